@@ -1,0 +1,195 @@
+"""TOML settings: defaults, loading, and validation of keys.
+
+Every setting has a default here; ``configs/default.toml`` documents the
+same values (a test keeps the two equal).  A user's file overrides any
+subset.  Unknown keys are an error that names the key and suggests the
+nearest known one, because a misspelt key silently ignored is a setting
+the user believes is in force and is not.
+"""
+from __future__ import annotations
+
+import copy
+import difflib
+import tomllib
+from pathlib import Path
+from typing import Any
+
+from .errors import InputError
+
+DEFAULTS: dict[str, dict[str, Any]] = {
+    "ratings": {
+        "user": "user",
+        "item": "item",
+        "rating": "rating",
+        "timestamp": "",
+        "scale": [1.0, 5.0],
+        "duplicates": "error",
+        "delimiter": ",",
+    },
+    "attributes": {
+        "id": "item",
+        "tag_separator": "|",
+        "delimiter": ",",
+        "columns": {},
+    },
+    "features": {
+        "text_max_features": 2000,
+        "text_min_df": 2,
+        "text_ngrams": 1,
+    },
+    "model": {
+        "rank": 16,
+        "lam_user": 5.0,
+        "lam_item": 5.0,
+        "lam_map": 1.0,
+        "epochs": 25,
+        "tol": 1e-5,
+        "seed": 0,
+        "prior": "learned",
+        "map_weighting": "none",
+        "holdout": 0.05,
+        "n_jobs": 2,
+    },
+    "score": {
+        "liked": 4.0,
+        "audience": 10,
+        "neighbours": 5,
+        "chunk": 2000,
+    },
+    "plan": {
+        "target": 0.8,
+        "k": 10,
+        "draws": 64,
+        "max_needed": 200,
+        "responders": "active",
+        "responder_threshold": 0.0,
+        "trusted_target": 0.8,
+        "seed": 0,
+    },
+    "engine": {
+        "kind": "local",
+    },
+}
+
+COLUMN_TYPES = ("text", "category", "tags", "number", "ignore")
+_FREE_TABLES = {("attributes", "columns")}
+
+
+def _suggest(name: str, options) -> str:
+    near = difflib.get_close_matches(name, list(options), n=1, cutoff=0.5)
+    return f" (did you mean '{near[0]}'?)" if near else ""
+
+
+def _merge(base: dict, update: dict, where: tuple, source: str) -> None:
+    for key, value in update.items():
+        path = where + (key,)
+        if key not in base:
+            dotted = ".".join(path)
+            raise InputError(
+                f"unknown setting '{dotted}'{_suggest(key, base)}", file=source
+            )
+        if path in _FREE_TABLES:
+            if not isinstance(value, dict):
+                raise InputError(f"'{'.'.join(path)}' must be a table", file=source)
+            base[key] = dict(value)
+        elif isinstance(base[key], dict):
+            if not isinstance(value, dict):
+                raise InputError(f"'{'.'.join(path)}' must be a table", file=source)
+            _merge(base[key], value, path, source)
+        else:
+            base[key] = value
+
+
+def load_config(path: str | Path | None = None, overrides: dict | None = None) -> dict:
+    """Return the settings: defaults, updated by a TOML file and overrides.
+
+    Parameters
+    ----------
+    path : str or Path, optional
+        A TOML file.  ``None`` gives the defaults.
+    overrides : dict, optional
+        Nested mapping applied after the file, same keys as the file.
+
+    Examples
+    --------
+    >>> cfg = load_config(overrides={"model": {"rank": 8}})
+    >>> cfg["model"]["rank"], cfg["model"]["lam_user"]
+    (8, 5.0)
+    """
+    cfg = copy.deepcopy(DEFAULTS)
+    if path is not None:
+        path = Path(path)
+        if not path.is_file():
+            raise InputError("config file not found", file=str(path))
+        try:
+            data = tomllib.loads(path.read_text(encoding="utf-8"))
+        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+            raise InputError(f"not valid TOML: {exc}", file=str(path)) from None
+        _merge(cfg, data, (), str(path))
+    if overrides:
+        _merge(cfg, overrides, (), "overrides")
+    validate(cfg, str(path) if path else "settings")
+    return cfg
+
+
+def column_schema(cfg: dict) -> dict[str, dict]:
+    """Normalise ``[attributes.columns]`` to ``{name: {"type", "weight"}}``."""
+    out = {}
+    for name, spec in cfg["attributes"]["columns"].items():
+        if isinstance(spec, str):
+            spec = {"type": spec}
+        if not isinstance(spec, dict) or "type" not in spec:
+            raise InputError(f"column '{name}': expected a type name or a table with 'type'")
+        kind = spec["type"]
+        if kind not in COLUMN_TYPES:
+            raise InputError(
+                f"column '{name}': unknown attribute type '{kind}', expected one of "
+                f"{', '.join(COLUMN_TYPES)}{_suggest(str(kind), COLUMN_TYPES)}"
+            )
+        extra = set(spec) - {"type", "weight"}
+        if extra:
+            raise InputError(f"column '{name}': unknown key '{sorted(extra)[0]}'")
+        out[name] = {"type": kind, "weight": float(spec.get("weight", 1.0))}
+    return out
+
+
+def validate(cfg: dict, source: str) -> None:
+    """Check value types and ranges that would otherwise fail deep inside."""
+    m = cfg["model"]
+    checks = [
+        (isinstance(m["rank"], int) and m["rank"] >= 1, "model.rank", "a whole number >= 1"),
+        (m["lam_user"] > 0, "model.lam_user", "a number > 0"),
+        (m["lam_item"] > 0, "model.lam_item", "a number > 0"),
+        (m["lam_map"] > 0, "model.lam_map", "a number > 0"),
+        (isinstance(m["epochs"], int) and m["epochs"] >= 1, "model.epochs", "a whole number >= 1"),
+        (m["prior"] in ("fixed", "learned"), "model.prior", "'fixed' or 'learned'"),
+        (m["map_weighting"] in ("none", "precision"), "model.map_weighting", "'none' or 'precision'"),
+        (0 <= m["holdout"] < 1, "model.holdout", "a fraction in [0, 1)"),
+        (cfg["ratings"]["duplicates"] in ("error", "last"), "ratings.duplicates", "'error' or 'last'"),
+        (len(cfg["ratings"]["scale"]) == 2 and cfg["ratings"]["scale"][0] < cfg["ratings"]["scale"][1],
+         "ratings.scale", "[low, high] with low < high"),
+        (0 < cfg["plan"]["target"] <= 1, "plan.target", "a fraction in (0, 1]"),
+        (cfg["plan"]["responders"] in ("active", "likely"), "plan.responders", "'active' or 'likely'"),
+        (cfg["engine"]["kind"] in ("local",), "engine.kind", "'local'"),
+    ]
+    for ok, key, expected in checks:
+        if not ok:
+            section, name = key.split(".")
+            raise InputError(f"setting '{key}': expected {expected}, found {cfg[section][name]!r}", file=source)
+    column_schema(cfg)
+
+
+def model_params(cfg: dict) -> dict:
+    """The keyword arguments of :class:`hybrid.HybridFactorModel` from settings."""
+    m = cfg["model"]
+    return {
+        "rank": m["rank"], "lam_user": float(m["lam_user"]), "lam_item": float(m["lam_item"]),
+        "lam_map": float(m["lam_map"]), "epochs": m["epochs"], "tol": float(m["tol"]),
+        "seed": m["seed"], "prior": m["prior"], "map_weighting": m["map_weighting"],
+        "holdout": float(m["holdout"]), "n_jobs": m["n_jobs"],
+        "schema": column_schema(cfg),
+        "text_max_features": cfg["features"]["text_max_features"],
+        "text_min_df": cfg["features"]["text_min_df"],
+        "text_ngrams": cfg["features"]["text_ngrams"],
+        "tag_separator": cfg["attributes"]["tag_separator"],
+    }

@@ -1,0 +1,385 @@
+"""The fitted hybrid model: factors, attribute map, projection and prediction."""
+from __future__ import annotations
+
+import time
+
+import numpy as np
+import pandas as pd
+import scipy.sparse as sp
+
+from .data import check_items_described, validate_attributes, validate_ratings
+from .errors import InputError
+from .features import AttributeEncoder
+from .train import Factors, RatingData, fit_factors, item_step, user_step
+
+_PARAMS = ("rank", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
+           "map_weighting", "holdout", "biases", "n_jobs", "text_max_features", "text_min_df",
+           "text_ngrams", "tag_separator")
+
+
+class HybridFactorModel:
+    """Low-rank rating factors fitted jointly with a map from item attributes.
+
+    Parameters
+    ----------
+    rank : int
+        Length of the user and item vectors.
+    lam_user, lam_item, lam_map : float
+        Regularisation of user blocks, of item blocks around their attribute
+        projection, and of the map.
+    epochs : int
+        Most alternating epochs.
+    tol : float
+        Stop when the objective changes by less than this fraction.
+    seed : int
+        Seed of the initial item vectors and of the holdout draw.
+    schema : dict, optional
+        ``{column: 'text'|'category'|'tags'|'number'|'ignore'}`` or
+        ``{column: {"type": ..., "weight": w}}``; ``None`` uses no attributes
+        beyond an intercept.
+    prior : {'learned', 'fixed'}
+        ``'learned'`` re-estimates the item prior covariance by EM between
+        epochs; ``'fixed'`` keeps ``lam_item * I``.
+    map_weighting : {'none', 'precision'}
+        ``'precision'`` weights each item's prior term by how well its
+        ratings determine its block (see :func:`hybrid.train.fit_factors`).
+    holdout : float
+        Fraction of ratings kept aside to report validation RMSE per epoch.
+    biases : bool
+        Fit user and item biases.
+    n_jobs : int
+        Threads for the block solves.
+    text_max_features, text_min_df, text_ngrams, tag_separator
+        Attribute encoding, see :class:`hybrid.features.AttributeEncoder`.
+
+    Examples
+    --------
+    >>> from hybrid.samples import tasting_club
+    >>> club = tasting_club(n_members=300, n_lots=60, n_new=5, seed=1)
+    >>> m = HybridFactorModel(rank=4, epochs=5, schema=club.schema).fit(club.ratings, club.lots)
+    >>> m.predict(["M0001"], [club.new_lots.index[0]], attributes=club.new_lots).shape
+    (1,)
+    """
+
+    def __init__(self, rank=16, lam_user=5.0, lam_item=5.0, lam_map=1.0, epochs=25, tol=1e-5,
+                 seed=0, schema=None, prior="learned", map_weighting="none", holdout=0.0,
+                 biases=True, n_jobs=1, text_max_features=2000, text_min_df=2, text_ngrams=1,
+                 tag_separator="|"):
+        self.rank = rank
+        self.lam_user = lam_user
+        self.lam_item = lam_item
+        self.lam_map = lam_map
+        self.epochs = epochs
+        self.tol = tol
+        self.seed = seed
+        self.schema = schema
+        self.prior = prior
+        self.map_weighting = map_weighting
+        self.holdout = holdout
+        self.biases = biases
+        self.n_jobs = n_jobs
+        self.text_max_features = text_max_features
+        self.text_min_df = text_min_df
+        self.text_ngrams = text_ngrams
+        self.tag_separator = tag_separator
+
+    def get_params(self) -> dict:
+        """Hyper-parameters as given to ``__init__``."""
+        return {k: getattr(self, k) for k in _PARAMS}
+
+    def _check_params(self):
+        for name in ("lam_user", "lam_item", "lam_map"):
+            if not getattr(self, name) > 0:
+                raise InputError(f"{name} must be > 0, found {getattr(self, name)!r}")
+        if not (isinstance(self.rank, (int, np.integer)) and self.rank >= 1):
+            raise InputError(f"rank must be a whole number >= 1, found {self.rank!r}")
+        if self.prior not in ("learned", "fixed"):
+            raise InputError(f"prior must be 'learned' or 'fixed', found {self.prior!r}")
+        if self.map_weighting not in ("none", "precision"):
+            raise InputError(f"map_weighting must be 'none' or 'precision', found {self.map_weighting!r}")
+        if not 0 <= self.holdout < 1:
+            raise InputError(f"holdout must be in [0, 1), found {self.holdout!r}")
+
+    # ----------------------------------------------------------------- fit
+    def fit(self, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None, on_epoch=None):
+        """Fit factors and map jointly.
+
+        Parameters
+        ----------
+        ratings : DataFrame
+            Columns ``user``, ``item``, ``rating``.
+        attributes : DataFrame, optional
+            Indexed by item id, columns per ``schema``.  Every rated item
+            needs a row; rows of unrated items are fitted as cold items.
+        on_epoch : callable, optional
+            Called with each epoch's record (for progress display).
+
+        Returns
+        -------
+        self
+        """
+        self._check_params()
+        t0 = time.perf_counter()
+        ratings = validate_ratings(ratings, {"user": "user", "item": "item", "rating": "rating"},
+                                   scale=(-np.inf, np.inf), source="ratings")
+        schema = self.schema or {}
+        if attributes is None:
+            attributes = pd.DataFrame(index=pd.Index(ratings["item"].unique(), name="item"))
+        attributes = validate_attributes(attributes, None, AttributeEncoder(schema)._spec(),
+                                         source="attributes")
+        check_items_described(ratings, attributes)
+        self.features_ = AttributeEncoder(schema, self.text_max_features, self.text_min_df,
+                                          self.text_ngrams, self.tag_separator).fit(attributes)
+        self.item_ids_ = attributes.index.to_numpy(dtype=str)
+        self.user_ids_ = np.unique(ratings["user"].to_numpy(dtype=str))
+        self.attributes_ = self.features_.transform(attributes)
+        u = np.searchsorted(self.user_ids_, ratings["user"].to_numpy(dtype=str))
+        i = pd.Index(self.item_ids_).get_indexer(ratings["item"])
+        r = ratings["rating"].to_numpy(float)
+        train, valid = self._holdout_split(len(r))
+        self.ratings_ = (u[train].astype(np.int32), i[train].astype(np.int32), r[train])
+        data = self._data()
+        validate = None
+        if valid.size:
+            uv, iv, rv = u[valid], i[valid], r[valid]
+            validate = lambda F: float(np.sqrt(np.mean((rv - self._predict_codes(F, data.mu, uv, iv)) ** 2)))
+        weight = self._prior_weight(data)
+        F, sigma2 = fit_factors(data, self.attributes_, rank=self.rank, lam_user=self.lam_user,
+                                lam_item=self.lam_item, lam_map=self.lam_map, epochs=self.epochs,
+                                tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
+                                biases=self.biases, n_jobs=self.n_jobs, validate=validate,
+                                on_epoch=on_epoch)
+        self._set_factors(F, data.mu, sigma2, weight)
+        last = F.history[-1]
+        self.metrics_ = {"n_users": len(self.user_ids_), "n_items": len(self.item_ids_),
+                         "n_rated_items": int((self.item_counts_ > 0).sum()), "n_ratings": int(train.size),
+                         "n_holdout": int(valid.size), "n_features": int(self.attributes_.shape[1]),
+                         "epochs_run": len(F.history), "objective": last["objective"],
+                         "train_rmse": last["train_rmse"],
+                         "valid_rmse": last["valid_rmse"] if valid.size else None,
+                         "sigma2": self.sigma2_, "seconds": time.perf_counter() - t0}
+        return self
+
+    def _holdout_split(self, n):
+        idx = np.arange(n)
+        if not self.holdout:
+            return idx, idx[:0]
+        mask = np.random.default_rng(self.seed + 1).random(n) < self.holdout
+        return idx[~mask], idx[mask]
+
+    def _data(self) -> RatingData:
+        u, i, r = self.ratings_
+        mu = getattr(self, "mu_", None)
+        return RatingData.from_codes(u, i, r, len(self.user_ids_), len(self.item_ids_), mu)
+
+    def _prior_weight(self, data):
+        if self.map_weighting == "none":
+            return np.ones(len(self.item_ids_))
+        # the share of an item's block its own ratings determine, n / (n + n0),
+        # with n0 = lam_item (one rating's worth of precision per unit of lam):
+        # poorly rated items pull the map less, and no weight is zero
+        counts = np.diff(data.by_item.indptr).astype(float)
+        return np.maximum(counts / (counts + self.lam_item), 0.05)
+
+    def _set_factors(self, F: Factors, mu, sigma2, weight):
+        self.factors_ = F
+        self.mu_ = float(mu)
+        self.sigma2_ = float(sigma2)
+        self.prior_weight_ = weight
+        self.history_ = list(F.history)
+        self.item_counts_ = np.bincount(self.ratings_[1], minlength=len(self.item_ids_))
+        self.user_counts_ = np.bincount(self.ratings_[0], minlength=len(self.user_ids_))
+
+    # ------------------------------------------------------------- access
+    def _fitted(self):
+        if not hasattr(self, "factors_"):
+            raise InputError("this model is not fitted yet; call fit() first")
+        return self.factors_
+
+    @property
+    def item_blocks_(self):
+        """Rows ``[b_i, x_i]`` of every known item."""
+        return self._fitted().item
+
+    @property
+    def user_blocks_(self):
+        """Rows ``[b_u, theta_u]`` of every known user."""
+        return self._fitted().user
+
+    @property
+    def map_(self):
+        """The attribute map ``W`` (features x block)."""
+        return self._fitted().W
+
+    @property
+    def prior_precision_(self):
+        """Item prior precision ``P`` (block x block); covariance is ``sigma2_ * P^-1``."""
+        return self._fitted().P
+
+    def _blocks_for_items(self, items, attributes=None):
+        """Blocks of known items, projections of the others (from ``attributes``)."""
+        F = self._fitted()
+        items = np.asarray(items, dtype=str)
+        pos = pd.Index(self.item_ids_).get_indexer(items)
+        z = np.empty((len(items), F.item.shape[1]))
+        known = pos >= 0
+        z[known] = F.item[pos[known]]
+        if (~known).any():
+            unknown = items[~known]
+            if attributes is None or not np.isin(unknown, attributes.index.astype(str)).all():
+                missing = unknown[~np.isin(unknown, [] if attributes is None else attributes.index.astype(str))]
+                raise InputError(f"item '{missing[0]}' is not in the model and has no attribute row")
+            z[~known] = self._project_blocks(attributes.loc[unknown])
+        return z
+
+    def _project_blocks(self, attributes):
+        A = self.features_.transform(attributes)
+        return np.asarray(A @ self._fitted().W)
+
+    def project(self, attributes: pd.DataFrame) -> pd.DataFrame:
+        """Projected blocks ``W^T a`` of items from their attributes alone.
+
+        Returns a DataFrame indexed by item with ``bias`` and ``f0..f{rank-1}``.
+        """
+        self._fitted()
+        attributes = validate_attributes(attributes, None, self.features_._spec(), source="attributes",
+                                         require_all=False)
+        z = self._project_blocks(attributes)
+        return self._frame(z, attributes.index)
+
+    def _frame(self, z, index):
+        cols = (["bias"] if self.biases else []) + [f"f{j}" for j in range(self.rank)]
+        return pd.DataFrame(z, index=pd.Index(np.asarray(index, dtype=str), name="item"), columns=cols)
+
+    def item_vectors(self) -> pd.DataFrame:
+        """Blocks of every known item (rated ones fitted, unrated ones projected)."""
+        return self._frame(self._fitted().item, self.item_ids_)
+
+    def _user_rows(self, users):
+        F = self._fitted()
+        users = np.asarray(users, dtype=str)
+        pos = np.searchsorted(self.user_ids_, users)
+        pos = np.minimum(pos, len(self.user_ids_) - 1)
+        known = self.user_ids_[pos] == users
+        # an unknown user has the prior block (zeros): predictions fall back to mu + b_i
+        return np.where(known[:, None], F.user[pos], 0.0)
+
+    def _predict_codes(self, F, mu, u, i):
+        ub, ut = F.split(F.user)
+        ib, ix = F.split(F.item)
+        pred = mu + np.einsum("nk,nk->n", ut[u], ix[i])
+        return pred + (ub[u] + ib[i] if ub is not None else 0.0)
+
+    def _combine(self, wu, zi):
+        F = self._fitted()
+        if not self.biases:
+            return self.mu_ + np.einsum("nk,nk->n", wu, zi)
+        return self.mu_ + wu[:, 0] + zi[:, 0] + np.einsum("nk,nk->n", wu[:, 1:], zi[:, 1:])
+
+    def predict(self, users, items, attributes: pd.DataFrame | None = None) -> np.ndarray:
+        """Expected ratings for pairs ``(users[n], items[n])``.
+
+        Items the model has never seen are projected from ``attributes``;
+        users it has never seen get the population block (``mu + b_i``).
+        """
+        users, items = np.asarray(users, dtype=str), np.asarray(items, dtype=str)
+        if users.shape != items.shape:
+            raise InputError(f"users and items must have the same length, found {users.size} and {items.size}")
+        return self._combine(self._user_rows(users), self._blocks_for_items(items, attributes))
+
+    def score_blocks(self, z: np.ndarray, chunk: int = 2048):
+        """Yield ``(start, block)`` of the item x user score matrix for blocks ``z``."""
+        F = self._fitted()
+        ub, ut = F.split(F.user)
+        ib, ix = F.split(z)
+        for s in range(0, len(z), chunk):
+            block = self.mu_ + ix[s:s + chunk] @ ut.T
+            if ub is not None:
+                block += ib[s:s + chunk, None] + ub[None, :]
+            yield s, block
+
+    def score_matrix(self, items, attributes: pd.DataFrame | None = None, chunk: int = 2048) -> np.ndarray:
+        """The item x user matrix ``mu + b_i + b_u + X Theta^T`` for ``items``.
+
+        Computed ``chunk`` items at a time; callers that need many items
+        should iterate :meth:`score_blocks` instead of holding it all.
+        """
+        z = self._blocks_for_items(items, attributes)
+        out = np.empty((len(z), len(self.user_ids_)))
+        for s, block in self.score_blocks(z, chunk):
+            out[s:s + len(block)] = block
+        return out
+
+    # ------------------------------------------------------------ fold-in
+    def fold_in(self, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None):
+        """Add new ratings and re-solve only the users and items they touch.
+
+        Everything else (other users, other items, the map, the prior) stays
+        fixed, so this is fast and leaves the rest of the model unchanged.
+        New items need an attribute row; new users are added.
+
+        Returns
+        -------
+        self
+        """
+        F = self._fitted()
+        ratings = validate_ratings(ratings, {"user": "user", "item": "item", "rating": "rating"},
+                                   scale=(-np.inf, np.inf), duplicates="last", source="new ratings")
+        self._add_items(ratings, attributes)
+        self._add_users(ratings)
+        u = np.searchsorted(self.user_ids_, ratings["user"].to_numpy(dtype=str))
+        i = pd.Index(self.item_ids_).get_indexer(ratings["item"])
+        old_u, old_i, old_r = self.ratings_
+        keys_old = old_u.astype(np.int64) * len(self.item_ids_) + old_i
+        keep = ~np.isin(keys_old, u.astype(np.int64) * len(self.item_ids_) + i)
+        self.ratings_ = (np.concatenate([old_u[keep], u]).astype(np.int32),
+                         np.concatenate([old_i[keep], i]).astype(np.int32),
+                         np.concatenate([old_r[keep], ratings["rating"].to_numpy(float)]))
+        data = self._data()
+        touched_u, touched_i = np.unique(u), np.unique(i)
+        if self.map_weighting != "none":
+            self.prior_weight_[touched_i] = self._prior_weight(data)[touched_i]
+        user_step(data, F, self.lam_user, rows=touched_u)
+        item_step(data, F, self.attributes_, self.prior_weight_, rows=touched_i)
+        self.item_counts_ = np.bincount(self.ratings_[1], minlength=len(self.item_ids_))
+        self.user_counts_ = np.bincount(self.ratings_[0], minlength=len(self.user_ids_))
+        return self
+
+    def _add_items(self, ratings, attributes):
+        new = np.setdiff1d(ratings["item"].unique().astype(str), self.item_ids_)
+        if not new.size:
+            return
+        if attributes is None or not np.isin(new, attributes.index.astype(str)).all():
+            raise InputError(f"item '{new[0]}' is not in the model; give its attribute row to fold it in")
+        rows = attributes.loc[new]
+        A_new = self.features_.transform(rows)
+        F = self.factors_
+        F.item = np.vstack([F.item, np.asarray(A_new @ F.W)])
+        self.attributes_ = sp.vstack([self.attributes_, A_new], format="csr")
+        self.item_ids_ = np.concatenate([self.item_ids_, new])
+        self.prior_weight_ = np.concatenate([self.prior_weight_, np.ones(len(new))])
+
+    def _add_users(self, ratings):
+        new = np.setdiff1d(ratings["user"].unique().astype(str), self.user_ids_)
+        if not new.size:
+            return
+        F = self.factors_
+        ids = np.concatenate([self.user_ids_, new])
+        order = np.argsort(ids, kind="stable")
+        F.user = np.vstack([F.user, np.zeros((len(new), F.user.shape[1]))])[order]
+        remap = np.empty(len(ids), dtype=np.int64)
+        remap[order] = np.arange(len(ids))
+        u, i, r = self.ratings_
+        self.ratings_ = (remap[u].astype(np.int32), i, r)
+        self.user_ids_ = ids[order]
+
+    # --------------------------------------------------------------- misc
+    def related(self, items, k: int = 5, metric: str = "euclidean", among=None) -> pd.DataFrame:
+        """Nearest items by distance between item vectors; see :func:`hybrid.related.related`."""
+        from .related import related
+        return related(self, items, k=k, metric=metric, among=among)
+
+    def save(self, path) -> None:
+        """Write the model file (JSON manifest + arrays, no pickle)."""
+        from .store import save_model
+        save_model(self, path)

@@ -1,0 +1,248 @@
+"""The joint alternating solver.
+
+Minimises, with ``z_i = [b_i, x_i]`` and ``w_u = [b_u, theta_u]``::
+
+    sum_(i,u) (r_iu - mu - b_u - b_i - theta_u . x_i)^2
+      + lam_user * sum_u |w_u|^2
+      + sum_i c_i (z_i - W^T a_i)^T P (z_i - W^T a_i)
+      + lam_map * |W|^2
+
+with ``P = lam_item * I`` (the fixed prior) and ``c_i = 1`` unless the map is
+weighted.  Each half-step (users, items, map) is an exact minimisation over
+its block, so the objective never increases while ``P`` is fixed.  With the
+learned prior, ``P`` is re-estimated between epochs by an EM step (Dempster,
+Laird and Rubin, 1977): the prior covariance becomes the mean of the items'
+posterior second moments around their attribute projection.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.sparse as sp
+
+from .blocks import design, groups, gather, solve_rows
+
+_CHUNK = 1 << 19  # ratings per chunk when evaluating residuals
+
+
+@dataclass
+class RatingData:
+    """Ratings as two CSR copies (by user, by item) of ``r - mu``."""
+
+    by_user: sp.csr_matrix
+    by_item: sp.csr_matrix
+    mu: float
+
+    @classmethod
+    def from_codes(cls, users, items, ratings, n_users, n_items, mu=None):
+        """Build both copies from integer codes; ``mu`` defaults to the mean rating."""
+        mu = float(np.mean(ratings)) if mu is None else float(mu)
+        by_user = sp.csr_matrix((np.asarray(ratings, float) - mu, (users, items)),
+                                shape=(n_users, n_items))
+        by_user.sort_indices()
+        by_item = by_user.T.tocsr()
+        by_item.sort_indices()
+        return cls(by_user, by_item, mu)
+
+    @property
+    def nnz(self) -> int:
+        return self.by_user.nnz
+
+
+@dataclass
+class Factors:
+    """The fitted blocks; ``user``/``item`` rows are ``[bias, vector]`` with biases."""
+
+    user: np.ndarray
+    item: np.ndarray
+    W: np.ndarray
+    P: np.ndarray
+    biases: bool = True
+    history: list = field(default_factory=list)
+
+    def split(self, z):
+        """(bias, vectors) of a block; bias is ``None`` without biases."""
+        return (z[:, 0], z[:, 1:]) if self.biases else (None, z)
+
+
+def _offsets(F: Factors, z):
+    bias, _ = F.split(z)
+    return np.zeros(len(z)) if bias is None else bias
+
+
+def residuals(data: RatingData, F: Factors, rows=None):
+    """Yield chunks of ``r - prediction`` over all ratings (by user order)."""
+    R = data.by_user
+    ub, ut = F.split(F.user)
+    ib, ix = F.split(F.item)
+    users = np.repeat(np.arange(R.shape[0]), np.diff(R.indptr))
+    for s in range(0, R.nnz, _CHUNK):
+        u, i = users[s:s + _CHUNK], R.indices[s:s + _CHUNK]
+        pred = np.einsum("nk,nk->n", ut[u], ix[i])
+        if ub is not None:
+            pred += ub[u] + ib[i]
+        yield R.data[s:s + _CHUNK] - pred
+
+
+def objective(data, F, A, lam_user, lam_map, weight):
+    """The trainer's objective and the data term (sum of squared errors)."""
+    sse = float(sum(float(e @ e) for e in residuals(data, F)))
+    D = F.item - A @ F.W
+    prior = float(np.einsum("ij,jk,ik,i->", D, F.P, D, weight))
+    total = sse + lam_user * float(np.sum(F.user ** 2)) + prior + lam_map * float(np.sum(F.W ** 2))
+    return total, sse
+
+
+def _rows(R, rows):
+    return R if rows is None else R[rows]
+
+
+def user_step(data, F: Factors, lam_user, n_jobs=1, with_edf=False, rows=None):
+    """Exact minimisation over every user's block (or ``rows`` only), items fixed."""
+    ib, ix = F.split(F.item)
+    R = _rows(data.by_user, rows)
+    d = F.user.shape[1]
+    z, edf = solve_rows(R.indptr, R.indices, R.data, design(ix, ib), _offsets(F, F.item),
+                        lam_user * np.eye(d), None, None, n_jobs, with_edf)
+    F.user[slice(None) if rows is None else rows] = z
+    return edf
+
+
+def item_step(data, F: Factors, A, weight, n_jobs=1, with_edf=False, rows=None):
+    """Exact minimisation over every item's block (or ``rows`` only), users and map fixed."""
+    ub, ut = F.split(F.user)
+    R = _rows(data.by_item, rows)
+    sel = slice(None) if rows is None else rows
+    z, edf = solve_rows(R.indptr, R.indices, R.data, design(ut, ub), _offsets(F, F.user),
+                        F.P, A[sel] @ F.W, weight[sel], n_jobs, with_edf)
+    F.item[sel] = z
+    return edf
+
+
+class MapSolver:
+    """Exact weighted ridge solves for the map ``W`` under any prior precision.
+
+    The Gram matrix of the rated items' attributes is decomposed once per
+    fit; each map step is then a few dense products.  With ``P = Q D Q^T``
+    the problem separates along the columns of ``W Q``, column ``j`` being a
+    ridge regression with penalty ``lam_map / D_j``.
+    """
+
+    def __init__(self, A_rated, weight, lam_map):
+        self.lam_map = lam_map
+        self.sw = np.sqrt(weight)[:, None]
+        At = sp.csr_matrix(A_rated).multiply(self.sw).tocsr()
+        self.primal = At.shape[1] <= At.shape[0]
+        K = (At.T @ At) if self.primal else (At @ At.T)
+        self.s, self.V = np.linalg.eigh(K.toarray() if sp.issparse(K) else K)
+        self.s = np.maximum(self.s, 0.0)
+        self.At = At
+
+    def solve(self, Z_rated, P):
+        D, Q = np.linalg.eigh(P)
+        c = self.lam_map / np.maximum(D, 1e-12)
+        Zq = (self.sw * Z_rated) @ Q
+        if self.primal:
+            core = self.V.T @ (self.At.T @ Zq)
+            Wq = self.V @ (core / (self.s[:, None] + c[None, :]))
+        else:
+            core = self.V.T @ Zq
+            Wq = self.At.T @ (self.V @ (core / (self.s[:, None] + c[None, :])))
+        return np.asarray(Wq) @ Q.T
+
+
+def map_step(F: Factors, A, rated, solver: MapSolver):
+    """Exact minimisation over ``W`` jointly with the unrated items' blocks.
+
+    For any ``W`` the best block of an unrated item is its prior mean, at
+    zero cost, so ``W`` is fitted to the rated items alone and the unrated
+    ones then follow ``W^T a_i``.
+    """
+    F.W = solver.solve(F.item[rated], F.P)
+    unrated = ~rated
+    if unrated.any():
+        F.item[unrated] = A[unrated] @ F.W
+
+
+def em_prior(data, F: Factors, A, weight, sigma2, rated):
+    """EM update of the item prior precision ``P = sigma^2 Psi^-1``.
+
+    ``Psi`` is the weighted mean over rated items of
+    ``(z_i - m_i)(z_i - m_i)^T + Sigma_i``, with the posterior covariance
+    ``Sigma_i = sigma^2 (B_i^T B_i + c_i P)^-1``.
+    """
+    ub, ut = F.split(F.user)
+    R = data.by_item
+    Fe = design(ut, ub)
+    d = F.item.shape[1]
+    S = np.zeros((d, d))
+    for g in groups(np.diff(R.indptr), d):
+        T, _ = gather(R.indptr, R.indices, R.data, g, Fe, _offsets(F, F.user))
+        A_g = T.transpose(0, 2, 1) @ T + weight[g, None, None] * F.P
+        S += sigma2 * np.einsum("g,gij->ij", weight[g], np.linalg.inv(A_g))
+    D = (F.item - A @ F.W)[rated]
+    S += np.einsum("i,ij,ik->jk", weight[rated], D, D)
+    Psi = S / max(int(rated.sum()), 1)
+    Psi = 0.5 * (Psi + Psi.T) + 1e-9 * np.trace(Psi) / d * np.eye(d)
+    return sigma2 * np.linalg.inv(Psi)
+
+
+def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epochs, tol,
+                seed, prior="fixed", weight=None, biases=True, n_jobs=1, validate=None,
+                on_epoch=None, P0=None):
+    """Run the alternating solver; return the fitted :class:`Factors` and sigma^2.
+
+    Parameters
+    ----------
+    data : RatingData
+    A : sparse (n_items, p)
+        Attribute design matrix.
+    validate : callable, optional
+        ``validate(F) -> rmse`` called after each epoch.
+    on_epoch : callable, optional
+        ``on_epoch(record)`` with the epoch's figures, for progress display.
+    P0 : ndarray, optional
+        Starting prior precision (default ``lam_item * I``).
+    """
+    n_users, n_items = data.by_user.shape
+    d = rank + 1 if biases else rank
+    rng = np.random.default_rng(seed)
+    weight = np.ones(n_items) if weight is None else np.asarray(weight, float)
+    item = rng.normal(0.0, 0.1, (n_items, d))
+    if biases:
+        item[:, 0] = 0.0
+    F = Factors(user=np.zeros((n_users, d)), item=item, W=np.zeros((A.shape[1], d)),
+                P=lam_item * np.eye(d) if P0 is None else np.array(P0, float), biases=biases)
+    rated = np.diff(data.by_item.indptr) > 0
+    solver = MapSolver(A[rated], weight[rated], lam_map)
+    learn = prior == "learned"
+    previous = np.inf
+    sigma2 = np.nan
+    for epoch in range(1, epochs + 1):
+        t0 = time.perf_counter()
+        edf_u = user_step(data, F, lam_user, n_jobs, with_edf=True)
+        if learn and epoch > 1:
+            F.P = em_prior(data, F, A, weight, sigma2, rated)
+        edf_i = item_step(data, F, A, weight, n_jobs, with_edf=True)
+        map_step(F, A, rated, solver)
+        total, sse = objective(data, F, A, lam_user, lam_map, weight)
+        # residual variance, corrected by the ridge fits' effective degrees of freedom
+        sigma2 = sse / max(data.nnz - edf_u - edf_i, 1.0)
+        record = {"epoch": epoch, "objective": total, "train_rmse": float(np.sqrt(sse / data.nnz)),
+                  "valid_rmse": float(validate(F)) if validate else float("nan"),
+                  "seconds": time.perf_counter() - t0}
+        F.history.append(record)
+        if on_epoch:
+            on_epoch(record)
+        if abs(previous - total) <= tol * abs(total):
+            break
+        previous = total
+    # a last item step (a descent step like any other) makes every rated
+    # item's vector the exact posterior mean under the final users, map and
+    # prior: the planner samples around these very vectors
+    edf_i = item_step(data, F, A, weight, n_jobs, with_edf=True)
+    sse = objective(data, F, A, lam_user, lam_map, weight)[1]
+    sigma2 = sse / max(data.nnz - edf_u - edf_i, 1.0)
+    return F, float(sigma2)

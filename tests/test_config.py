@@ -1,0 +1,33 @@
+"""Settings: the documented defaults are the real ones, and bad keys are named."""
+import tomllib
+from pathlib import Path
+
+import pytest
+
+from hybrid.config import DEFAULTS, load_config, model_params
+from hybrid.errors import InputError
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def test_default_toml_documents_exactly_the_defaults():
+    assert tomllib.loads((ROOT / "configs/default.toml").read_text()) == DEFAULTS
+
+
+def test_shipped_configs_load():
+    for path in (ROOT / "configs").glob("*.toml"):
+        cfg = load_config(path)
+        assert model_params(cfg)["rank"] >= 1
+
+
+def test_bad_values_are_named(tmp_path):
+    p = tmp_path / "c.toml"
+    p.write_text("[model]\nprior = 'magic'\n")
+    with pytest.raises(InputError, match="setting 'model.prior': expected 'fixed' or 'learned', found 'magic'"):
+        load_config(p)
+    p.write_text("[modle]\nrank = 3\n")
+    with pytest.raises(InputError, match="unknown setting 'modle' \\(did you mean 'model'\\?\\)"):
+        load_config(p)
+    p.write_text("[model\nrank = 3\n")
+    with pytest.raises(InputError, match="not valid TOML"):
+        load_config(p)
