@@ -276,5 +276,17 @@ def check_items_described(ratings: pd.DataFrame, attributes: pd.DataFrame,
     known = ratings["item"].isin(attributes.index).to_numpy()
     if not known.all():
         pos = int(np.flatnonzero(~known)[0])
-        raise InputError(f"item '{ratings['item'].iloc[pos]}' is rated but has no row in the attribute table",
+        item = ratings["item"].iloc[pos]
+        hint = ""
+        twin = [a for a in attributes.index if _same_number(a, item)]
+        if twin:
+            hint = f" (the attribute table has '{twin[0]}': ids are compared as text)"
+        raise InputError(f"item '{item}' is rated but has no row in the attribute table{hint}",
                          file=source, row=pos + row_base)
+
+
+def _same_number(a: str, b: str) -> bool:
+    try:
+        return float(a) == float(b)
+    except ValueError:
+        return False

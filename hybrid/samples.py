@@ -141,3 +141,6 @@ def write_samples(folder: str | Path, club: TastingClub | None = None) -> dict[s
         with atomic_path(paths[name]) as tmp:
             table.to_csv(tmp, index=False)
     return paths
+
+
+DEMO_CONFIG = Path(__file__).with_name("coffee.toml")  # the demo's settings, as configs/coffee.toml

@@ -1,0 +1,186 @@
+"""The command line: a thin typer face over the library.
+
+Every command prints tables on a terminal (``--format csv|json`` for
+machines), writes files atomically, and answers bad input with one line on
+stderr and exit code 2.
+"""
+from __future__ import annotations
+
+import time
+from pathlib import Path
+from typing import Optional
+
+import numpy as np
+import pandas as pd
+import typer
+
+from . import __version__
+from .config import load_config, model_params
+from .data import check_items_described, read_attributes, read_ratings
+from .display import EpochProgress, check_format, emit, emit_mapping, guarded, say
+from .errors import InputError
+from .model import HybridFactorModel
+from .outputs import check_writable
+from .store import load_model
+
+app = typer.Typer(add_completion=False, no_args_is_help=True, rich_markup_mode=None,
+                  help="Score new, unrated catalogue items from their attributes, and plan "
+                       "how many ratings each needs. Scores are estimates.")
+
+CAUTION = ("Ratings are personal data. Contacting customers needs their consent, must respect "
+           "opt-outs and local data-protection law; every number here is an estimate.")
+
+
+def settings_of(model, config: Optional[Path]) -> dict:
+    """The settings a command runs with: a given file, else those the model was trained with."""
+    if config is not None:
+        return load_config(config)
+    return model.settings_ or load_config()
+
+
+def train_model(ratings: Path, attributes: Path, cfg: dict, quiet: bool = False) -> HybridFactorModel:
+    """Read both tables, fit, and keep the settings in the model (shared by train and demo)."""
+    params = model_params(cfg)
+    table = read_ratings(ratings, cfg)
+    attrs = read_attributes(attributes, cfg, params["schema"])
+    check_items_described(table, attrs, source=str(ratings), row_base=2)
+    model = HybridFactorModel(**params)
+    with EpochProgress(params["epochs"], quiet) as progress:
+        model.fit(table, attrs, on_epoch=progress)
+    model.settings_ = cfg
+    return model
+
+
+@app.command()
+@guarded
+def train(ratings: Path = typer.Argument(..., help="Ratings table (CSV or Parquet)."),
+          attributes: Path = typer.Argument(..., help="Item attribute table, one row per item."),
+          config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
+          out: Path = typer.Option(..., "--out", help="Model file to write."),
+          quiet: bool = typer.Option(False, "--quiet", help="No progress bar."),
+          format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """Fit the joint model and write a model file.
+
+    Example: hybrid train ratings.csv lots.csv --config configs/coffee.toml --out club.hybrid
+    """
+    check_format(format)
+    check_writable(out)
+    cfg = load_config(config)
+    model = train_model(ratings, attributes, cfg, quiet)
+    model.save(out)
+    emit_mapping(_summary(model), format, f"trained {out}")
+
+
+def _summary(model) -> dict:
+    m = model.metrics_
+    return {"users": m["n_users"], "items": m["n_items"], "rated items": m["n_rated_items"],
+            "ratings": m["n_ratings"], "held out": m["n_holdout"], "features": m["n_features"],
+            "rank": model.rank, "epochs run": m["epochs_run"], "objective": round(m["objective"], 3),
+            "train RMSE": round(m["train_rmse"], 4),
+            "validation RMSE": None if m["valid_rmse"] is None else round(m["valid_rmse"], 4),
+            "residual variance": round(m["sigma2"], 4), "seconds": round(m["seconds"], 2)}
+
+
+@app.command()
+@guarded
+def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+          new_items: Path = typer.Argument(..., help="Attribute table of items to score."),
+          out: Path = typer.Option(..., "--out", help="Output: .csv, or .jsonl for JSON Lines."),
+          config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
+          liked: Optional[float] = typer.Option(None, "--liked", help="Rating that counts as liked."),
+          audience: Optional[int] = typer.Option(None, "--audience", help="Users listed per item."),
+          neighbours: Optional[int] = typer.Option(None, "--neighbours", help="Nearest items listed."),
+          chunk: Optional[int] = typer.Option(None, "--chunk", help="Items scored at a time."),
+          format: str = typer.Option("table", "--format", help="table, csv or json (the summary).")):
+    """Score items no one has rated: expected rating, liked share, audience, nearest items.
+
+    Example: hybrid score club.hybrid new_lots.csv --out scored.csv
+    """
+    from .scoring import score_items, write_scores
+
+    check_format(format)
+    check_writable(out)
+    model = load_model(model_file)
+    cfg = settings_of(model, config)
+    attrs = read_attributes(new_items, cfg, model.features_._spec(), require_all=False)
+    s = cfg["score"]
+    chunks = score_items(model, attrs, liked=s["liked"] if liked is None else liked,
+                         audience=s["audience"] if audience is None else audience,
+                         neighbours=s["neighbours"] if neighbours is None else neighbours,
+                         chunk=s["chunk"] if chunk is None else chunk)
+    head = []
+
+    def keep_head(gen):
+        for df in gen:
+            if len(head) < 1:
+                head.append(df)
+            yield df
+
+    n = write_scores(keep_head(chunks), out)
+    top = head[0].nlargest(10, "expected_rating") if head else pd.DataFrame()
+    if len(top):
+        top = top.assign(nearest=[v[0][0] if v else "" for v in top["nearest"]])[
+            ["item", "content_only", "expected_rating", "liked_share", "nearest"]]
+        emit(top, format, f"{n} items scored into {out}; the best of the first chunk")
+
+
+@app.command()
+@guarded
+def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+            item: str = typer.Argument(..., help="Item id."),
+            k: int = typer.Option(5, "--k", help="How many neighbours."),
+            metric: str = typer.Option("euclidean", "--metric", help="euclidean or cosine."),
+            format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """Nearest items by distance between item vectors (rated and projected alike).
+
+    Example: hybrid related club.hybrid L0007 --k 5 --metric cosine
+    """
+    check_format(format)
+    model = load_model(model_file)
+    if item not in set(model.item_ids_):
+        raise InputError(f"item '{item}' is not in the model")
+    emit(model.related([item], k=k, metric=metric), format, f"items nearest to {item} ({metric})")
+
+
+@app.command()
+@guarded
+def inspect(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+            format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """What a model was trained on, its settings and its metrics.
+
+    Example: hybrid inspect club.hybrid
+    """
+    check_format(format)
+    model = load_model(model_file)
+    info = _summary(model)
+    params = model.get_params()
+    info.update({f"setting {k}": v for k, v in params.items() if k != "schema"})
+    info["attribute columns"] = ", ".join(f"{c} ({s['type']})" for c, s in model.features_._spec().items())
+    info["last epochs' validation RMSE"] = ", ".join(
+        f"{r['valid_rmse']:.4f}" for r in model.history_[-3:] if r["valid_rmse"] == r["valid_rmse"])
+    emit_mapping(info, format, f"model {model_file}")
+
+
+@app.command()
+@guarded
+def demo(folder: Path = typer.Argument(Path("demo-out"), help="Folder for the demo's files."),
+         seed: int = typer.Option(7, "--seed", help="Seed of the invented tasting club.")):
+    """Run the tasting-club demo end to end and tell what it found.
+
+    Writes invented sample files, trains, scores the new lots, plans a sampling
+    campaign and writes a report, all inside FOLDER.
+
+    Example: hybrid demo demo-out
+    """
+    from .demo import run_demo
+    run_demo(folder, seed=seed, say=say)
+
+
+@app.command()
+def version():
+    """Print the version."""
+    say(__version__)
+
+
+def main():  # the console script
+    app()

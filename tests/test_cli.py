@@ -1,0 +1,178 @@
+"""The command line: every command end to end, and bad input through the CLI."""
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+import hybrid
+from hybrid.cli import app
+from hybrid.samples import tasting_club, write_samples
+
+runner = CliRunner()
+
+
+def run(*args):
+    return runner.invoke(app, [str(a) for a in args])
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("club")
+    club = tasting_club(n_members=400, n_lots=80, n_new=6, seed=2)
+    paths = write_samples(folder, club)
+    cfg = folder / "coffee.toml"
+    cfg.write_text(open("configs/coffee.toml").read().replace("epochs = 30", "epochs = 6"))
+    paths["config"] = cfg
+    model = folder / "club.hybrid"
+    result = run("train", paths["ratings"], paths["lots"], "--config", cfg, "--out", model, "--format", "json")
+    assert result.exit_code == 0, result.output
+    paths["model"] = model
+    paths["summary"] = json.loads(result.stdout)
+    return paths
+
+
+def one_line_error(result, *fragments):
+    assert result.exit_code == 2, (result.exit_code, result.output)
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("hybrid: error: "), result.stderr
+    assert "Traceback" not in result.output
+    for f in fragments:
+        assert f in lines[0], (f, lines[0])
+    return lines[0]
+
+
+def test_train_summary_and_model(files):
+    s = files["summary"]
+    assert s["users"] == 400 or s["users"] <= 400
+    assert s["ratings"] + s["held out"] == len(pd.read_csv(files["ratings"]))
+    m = hybrid.load(files["model"])
+    assert m.metrics_["train_rmse"] == pytest.approx(s["train RMSE"], abs=1e-4)
+    assert m.settings_["ratings"]["user"] == "member"
+
+
+def test_score_csv_and_jsonl_agree(files, tmp_path):
+    csv, jsonl = tmp_path / "s.csv", tmp_path / "s.jsonl"
+    assert run("score", files["model"], files["new_lots"], "--out", csv, "--chunk", "4").exit_code == 0
+    assert run("score", files["model"], files["new_lots"], "--out", jsonl, "--audience", "3").exit_code == 0
+    table = pd.read_csv(csv)
+    recs = [json.loads(line) for line in jsonl.read_text().splitlines()]
+    assert len(table) == len(recs) == 6
+    assert np.allclose(table["expected_rating"], [r["expected_rating"] for r in recs])
+    assert all(r["content_only"] for r in recs) and len(recs[0]["audience"]) == 3
+    assert table["user_1_rating"].ge(table["user_2_rating"]).all()
+    # the expected rating is the mean of the item's column of the score matrix
+    m = hybrid.load(files["model"])
+    new = pd.read_csv(files["new_lots"], dtype=str).set_index("lot")
+    S = m.score_matrix(table["item"].astype(str), attributes=new.assign(
+        altitude_m=new["altitude_m"].astype(float), price=new["price"].astype(float)))
+    assert np.allclose(table["expected_rating"], S.mean(axis=1), atol=1e-5)
+    assert np.allclose(table["liked_share"], (S >= 4.0).mean(axis=1), atol=1e-9)
+
+
+def test_related_and_inspect(files):
+    result = run("related", files["model"], "L0003", "--k", "4", "--format", "csv")
+    assert result.exit_code == 0
+    table = pd.read_csv(pd.io.common.StringIO(result.stdout))
+    assert table["rank"].tolist() == [1, 2, 3, 4] and table["distance"].is_monotonic_increasing
+    assert "L0003" not in table["neighbour"].tolist()
+    info = json.loads(run("inspect", files["model"], "--format", "json").stdout)
+    assert info["setting rank"] == 5 and "notes (text)" in info["attribute columns"]
+
+
+def test_help_has_an_example():
+    for cmd in ("train", "score", "related", "inspect", "demo"):
+        result = run(cmd, "--help")
+        assert result.exit_code == 0 and "Example: hybrid" in result.stdout, cmd
+
+
+# ---- bad input: one clear line, exit 2, nothing written ------------------------------
+
+def test_missing_and_empty_files(files, tmp_path):
+    out = tmp_path / "m.hybrid"
+    one_line_error(run("train", tmp_path / "nope.csv", files["lots"], "--config", files["config"], "--out", out),
+                   "nope.csv", "file not found")
+    empty = tmp_path / "empty.csv"
+    empty.write_text("")
+    one_line_error(run("train", empty, files["lots"], "--config", files["config"], "--out", out), "empty")
+    assert not out.exists()
+
+
+def test_no_header_and_wrong_delimiter(files, tmp_path):
+    out = tmp_path / "m.hybrid"
+    raw = pd.read_csv(files["ratings"])
+    nohead = tmp_path / "nohead.csv"
+    raw.to_csv(nohead, header=False, index=False)
+    one_line_error(run("train", nohead, files["lots"], "--config", files["config"], "--out", out), "missing column")
+    semi = tmp_path / "semi.csv"
+    raw.to_csv(semi, sep=";", index=False)
+    one_line_error(run("train", semi, files["lots"], "--config", files["config"], "--out", out),
+                   "looks ';'-separated")
+    assert list(tmp_path.iterdir()) == [nohead, semi] or not out.exists()
+
+
+def test_not_a_model_file(files, tmp_path):
+    one_line_error(run("inspect", files["ratings"]), "not a usable model file")
+    one_line_error(run("score", files["lots"], files["new_lots"], "--out", tmp_path / "s.csv"),
+                   "not a usable model file")
+    assert not (tmp_path / "s.csv").exists()
+
+
+def test_unknown_config_key(files, tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[model]\nrnak = 3\n")
+    one_line_error(run("train", files["ratings"], files["lots"], "--config", bad, "--out", tmp_path / "m"),
+                   "unknown setting 'model.rnak'", "did you mean 'rank'")
+
+
+def test_declared_column_absent(files, tmp_path):
+    lots = pd.read_csv(files["lots"]).drop(columns=["altitude_m"])
+    p = tmp_path / "lots.csv"
+    lots.to_csv(p, index=False)
+    one_line_error(run("train", files["ratings"], p, "--config", files["config"], "--out", tmp_path / "m"),
+                   "column 'altitude_m' is declared as number but is not in the file")
+
+
+def test_new_items_without_known_columns(files, tmp_path):
+    p = tmp_path / "new.csv"
+    pd.DataFrame({"lot": ["X1"], "colour": ["red"]}).to_csv(p, index=False)
+    out = tmp_path / "s.csv"
+    one_line_error(run("score", files["model"], p, "--out", out), "none of the model's attribute columns")
+    assert not out.exists()
+
+
+def test_ids_with_spaces_and_mixed_types(files, tmp_path):
+    raw = pd.read_csv(files["ratings"], dtype=str)
+    raw.loc[5, "member"] = " M00001"
+    p = tmp_path / "r.csv"
+    raw.to_csv(p, index=False)
+    one_line_error(run("train", p, files["lots"], "--config", files["config"], "--out", tmp_path / "m"),
+                   "row 7", "column 'member'", "surrounding spaces")
+    pq = tmp_path / "r.parquet"
+    ids = pd.read_csv(files["ratings"])
+    ids["lot"] = ids["lot"].str[1:].astype(float) + 0.5
+    ids.to_parquet(pq)
+    one_line_error(run("train", pq, files["lots"], "--config", files["config"], "--out", tmp_path / "m"),
+                   "column 'lot'", "decimal number")
+    # numbers written two ways in two files: ids are text, and the message says so
+    num = pd.read_csv(files["ratings"], dtype=str)
+    num["lot"] = num["lot"].str.lstrip("L0")
+    lots = pd.read_csv(files["lots"], dtype=str)
+    lots["lot"] = lots["lot"].str[1:]
+    num.to_csv(p, index=False)
+    lots.to_csv(tmp_path / "lots.csv", index=False)
+    one_line_error(run("train", p, tmp_path / "lots.csv", "--config", files["config"], "--out", tmp_path / "m"),
+                   "is rated but has no row", "ids are compared as text")
+
+
+def test_output_folder_missing(files, tmp_path):
+    one_line_error(run("train", files["ratings"], files["lots"], "--config", files["config"],
+                       "--out", tmp_path / "no" / "m.hybrid"), "folder", "does not exist")
+    one_line_error(run("score", files["model"], files["new_lots"], "--out", tmp_path / "no" / "s.csv"),
+                   "does not exist")
+
+
+def test_unknown_item_and_bad_format(files):
+    one_line_error(run("related", files["model"], "NOPE"), "item 'NOPE' is not in the model")
+    one_line_error(run("inspect", files["model"], "--format", "xml"), "--format must be one of")
