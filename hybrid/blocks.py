@@ -131,8 +131,8 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
     -------
     z : ndarray (n_rows, d)
         Unrated rows get their prior mean.
-    edf : float
-        Sum over rows of the effective degrees of freedom (0 unless asked).
+    edf : ndarray (n_rows,)
+        Each row's effective degrees of freedom (zeros unless asked).
 
     Examples
     --------
@@ -155,8 +155,8 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
             results = list(pool.map(lambda g: _solve_group(g, *args), jobs))
     else:
         results = [_solve_group(g, *args) for g in jobs]
-    edf = 0.0
+    edf = np.zeros(n)
     for g, zg, eg in results:
         z[g] = zg
-        edf += float(eg.sum())
+        edf[g] = eg
     return z, edf

@@ -41,7 +41,7 @@ DEFAULTS: dict[str, dict[str, Any]] = {
         "rank": 16,
         "lam_user": 5.0,
         "lam_item": 5.0,
-        "lam_map": 1.0,
+        "lam_map": "auto",
         "epochs": 25,
         "tol": 1e-5,
         "seed": 0,
@@ -63,7 +63,8 @@ DEFAULTS: dict[str, dict[str, Any]] = {
         "max_needed": 200,
         "responders": "active",
         "responder_threshold": 0.0,
-        "trusted_target": 0.8,
+        "pool_min_ratings": 20,
+        "aim": "reach",
         "seed": 0,
     },
     "engine": {
@@ -160,7 +161,8 @@ def validate(cfg: dict, source: str) -> None:
         (isinstance(m["rank"], int) and m["rank"] >= 1, "model.rank", "a whole number >= 1"),
         (m["lam_user"] > 0, "model.lam_user", "a number > 0"),
         (m["lam_item"] > 0, "model.lam_item", "a number > 0"),
-        (m["lam_map"] > 0, "model.lam_map", "a number > 0"),
+        (m["lam_map"] == "auto" or (not isinstance(m["lam_map"], str) and m["lam_map"] > 0),
+         "model.lam_map", "a number > 0 or 'auto'"),
         (isinstance(m["epochs"], int) and m["epochs"] >= 1, "model.epochs", "a whole number >= 1"),
         (m["prior"] in ("fixed", "learned"), "model.prior", "'fixed' or 'learned'"),
         (m["map_weighting"] in ("none", "precision"), "model.map_weighting", "'none' or 'precision'"),
@@ -170,6 +172,7 @@ def validate(cfg: dict, source: str) -> None:
          "ratings.scale", "[low, high] with low < high"),
         (0 < cfg["plan"]["target"] <= 1, "plan.target", "a fraction in (0, 1]"),
         (cfg["plan"]["responders"] in ("active", "likely"), "plan.responders", "'active' or 'likely'"),
+        (cfg["plan"]["aim"] in ("reach", "gain"), "plan.aim", "'reach' or 'gain'"),
         (cfg["engine"]["kind"] in ("local",), "engine.kind", "'local'"),
     ]
     for ok, key, expected in checks:
@@ -184,7 +187,7 @@ def model_params(cfg: dict) -> dict:
     m = cfg["model"]
     return {
         "rank": m["rank"], "lam_user": float(m["lam_user"]), "lam_item": float(m["lam_item"]),
-        "lam_map": float(m["lam_map"]), "epochs": m["epochs"], "tol": float(m["tol"]),
+        "lam_map": m["lam_map"] if m["lam_map"] == "auto" else float(m["lam_map"]), "epochs": m["epochs"], "tol": float(m["tol"]),
         "seed": m["seed"], "prior": m["prior"], "map_weighting": m["map_weighting"],
         "holdout": float(m["holdout"]), "n_jobs": m["n_jobs"],
         "schema": column_schema(cfg),

@@ -151,11 +151,12 @@ def check_ids(values: pd.Series, source: str, column: str, row_base: int) -> Non
 def parse_numbers(values: pd.Series, source: str, column: str, row_base: int,
                   allow_missing: bool) -> np.ndarray:
     """Convert text to floats; name the first cell that is not a number."""
-    num = pd.to_numeric(values.str.strip() if values.dtype == object else values, errors="coerce")
-    arr = num.to_numpy(dtype=float)
+    numeric = pd.api.types.is_numeric_dtype(values)
+    num = values if numeric else pd.to_numeric(values.astype(str).str.strip(), errors="coerce")
+    arr = num.to_numpy(dtype=float, na_value=np.nan)
     bad = ~np.isfinite(arr)
     if allow_missing:
-        bad &= values.astype(str).str.strip().to_numpy() != ""
+        bad &= ~np.isnan(arr) if numeric else values.astype(str).str.strip().to_numpy() != ""
     if bad.any():
         pos = int(np.flatnonzero(bad)[0])
         raise InputError(f"expected a number, found {values.iloc[pos]!r}", file=source,
@@ -257,7 +258,10 @@ def validate_attributes(df: pd.DataFrame, id_column: str | None, schema: dict, *
                          f"found columns {', '.join(df.columns)}", file=source)
     for col in used:
         if col in df.columns and schema[col]["type"] == "number":
-            parse_numbers(df[col].astype(str).replace("nan", ""), source, col, row_base, allow_missing=True)
+            values = df[col]
+            if not pd.api.types.is_numeric_dtype(values):
+                values = values.astype(object).where(values.notna(), "").astype(str)
+            parse_numbers(values, source, col, row_base, allow_missing=True)
     return df
 
 

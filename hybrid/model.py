@@ -26,7 +26,9 @@ class HybridFactorModel:
         Length of the user and item vectors.
     lam_user, lam_item, lam_map : float
         Regularisation of user blocks, of item blocks around their attribute
-        projection, and of the map.
+        projection, and of the map.  ``lam_map='auto'`` (with the learned
+        prior) chooses the map's penalty on held-out items; the value used is
+        ``lam_map_``.
     epochs : int
         Most alternating epochs.
     tol : float
@@ -61,7 +63,7 @@ class HybridFactorModel:
     (1,)
     """
 
-    def __init__(self, rank=16, lam_user=5.0, lam_item=5.0, lam_map=1.0, epochs=25, tol=1e-5,
+    def __init__(self, rank=16, lam_user=5.0, lam_item=5.0, lam_map="auto", epochs=25, tol=1e-5,
                  seed=0, schema=None, prior="learned", map_weighting="none", holdout=0.0,
                  biases=True, n_jobs=1, text_max_features=2000, text_min_df=2, text_ngrams=1,
                  tag_separator="|"):
@@ -89,8 +91,11 @@ class HybridFactorModel:
 
     def _check_params(self):
         for name in ("lam_user", "lam_item", "lam_map"):
-            if not getattr(self, name) > 0:
-                raise InputError(f"{name} must be > 0, found {getattr(self, name)!r}")
+            value = getattr(self, name)
+            if name == "lam_map" and value == "auto":
+                continue
+            if not (isinstance(value, (int, float, np.floating)) and value > 0):
+                raise InputError(f"{name} must be > 0, found {value!r}")
         if not (isinstance(self.rank, (int, np.integer)) and self.rank >= 1):
             raise InputError(f"rank must be a whole number >= 1, found {self.rank!r}")
         if self.prior not in ("learned", "fixed"):
@@ -131,6 +136,8 @@ class HybridFactorModel:
         self.features_ = AttributeEncoder(schema, self.text_max_features, self.text_min_df,
                                           self.text_ngrams, self.tag_separator).fit(attributes)
         self.item_ids_ = attributes.index.to_numpy(dtype=str)
+        # the raw table, as text, for priorities and reports (never used to fit)
+        self.item_table_ = attributes.astype(str).set_axis(pd.Index(self.item_ids_, name="item"), axis=0)
         self.user_ids_ = np.unique(ratings["user"].to_numpy(dtype=str))
         self.attributes_ = self.features_.transform(attributes)
         u = np.searchsorted(self.user_ids_, ratings["user"].to_numpy(dtype=str))
@@ -144,12 +151,15 @@ class HybridFactorModel:
             uv, iv, rv = u[valid], i[valid], r[valid]
             validate = lambda F: float(np.sqrt(np.mean((rv - self._predict_codes(F, data.mu, uv, iv)) ** 2)))
         weight = self._prior_weight(data)
+        auto = self.lam_map == "auto"
         F, sigma2 = fit_factors(data, self.attributes_, rank=self.rank, lam_user=self.lam_user,
-                                lam_item=self.lam_item, lam_map=self.lam_map, epochs=self.epochs,
+                                lam_item=self.lam_item, lam_map=1.0 if auto else float(self.lam_map),
+                                tune_map=auto and self.prior == "learned", epochs=self.epochs,
                                 tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
                                 biases=self.biases, n_jobs=self.n_jobs, validate=validate,
                                 on_epoch=on_epoch)
         self._set_factors(F, data.mu, sigma2, weight)
+        self.lam_map_ = float(F.lam_map)
         last = F.history[-1]
         self.metrics_ = {"n_users": len(self.user_ids_), "n_items": len(self.item_ids_),
                          "n_rated_items": int((self.item_counts_ > 0).sum()), "n_ratings": int(train.size),
@@ -157,7 +167,8 @@ class HybridFactorModel:
                          "epochs_run": len(F.history), "objective": last["objective"],
                          "train_rmse": last["train_rmse"],
                          "valid_rmse": last["valid_rmse"] if valid.size else None,
-                         "sigma2": self.sigma2_, "seconds": time.perf_counter() - t0}
+                         "sigma2": self.sigma2_, "lam_map": self.lam_map_,
+                         "seconds": time.perf_counter() - t0}
         return self
 
     def _holdout_split(self, n):
@@ -173,12 +184,16 @@ class HybridFactorModel:
         return RatingData.from_codes(u, i, r, len(self.user_ids_), len(self.item_ids_), mu)
 
     def _prior_weight(self, data):
+        return self._weight_for_counts(np.diff(data.by_item.indptr))
+
+    def _weight_for_counts(self, counts):
+        """Per-item multiplier of the prior term (ones unless the map is weighted)."""
+        counts = np.asarray(counts, float)
         if self.map_weighting == "none":
-            return np.ones(len(self.item_ids_))
+            return np.ones(len(counts))
         # the share of an item's block its own ratings determine, n / (n + n0),
         # with n0 = lam_item (one rating's worth of precision per unit of lam):
         # poorly rated items pull the map less, and no weight is zero
-        counts = np.diff(data.by_item.indptr).astype(float)
         return np.maximum(counts / (counts + self.lam_item), 0.05)
 
     def _set_factors(self, F: Factors, mu, sigma2, weight):
@@ -356,6 +371,9 @@ class HybridFactorModel:
         F = self.factors_
         F.item = np.vstack([F.item, np.asarray(A_new @ F.W)])
         self.attributes_ = sp.vstack([self.attributes_, A_new], format="csr")
+        if getattr(self, "item_table_", None) is not None:
+            extra = rows.astype(str).reindex(columns=self.item_table_.columns, fill_value="")
+            self.item_table_ = pd.concat([self.item_table_, extra.set_axis(pd.Index(new, name="item"), axis=0)])
         self.item_ids_ = np.concatenate([self.item_ids_, new])
         self.prior_weight_ = np.concatenate([self.prior_weight_, np.ones(len(new))])
 

@@ -15,6 +15,7 @@ import zipfile
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import scipy.sparse as sp
 
 from .errors import InputError
@@ -37,6 +38,10 @@ def _arrays(model) -> dict[str, np.ndarray]:
               "prior_weight": model.prior_weight_, "ratings_user": u, "ratings_item": i,
               "ratings_value": r, "attr_data": A.data, "attr_indices": A.indices,
               "attr_indptr": A.indptr, "attr_shape": np.array(A.shape, dtype=np.int64)}
+    table = getattr(model, "item_table_", None)
+    if table is not None:
+        for col in table.columns:
+            arrays[f"table_{col}"] = table[col].to_numpy(dtype=str)
     for name, arr in getattr(model, "extras_", {}).items():
         arrays[f"extra_{name}"] = np.asarray(arr)
     return arrays
@@ -45,12 +50,14 @@ def _arrays(model) -> dict[str, np.ndarray]:
 def save_model(model, path) -> None:
     """Write ``model`` to ``path`` atomically."""
     arrays = _arrays(model)
+    table = getattr(model, "item_table_", None)
     manifest = {
         "format": FORMAT, "format_version": VERSION,
         "params": model.get_params(), "settings": getattr(model, "settings_", None),
         "features": model.features_.get_state(), "metrics": model.metrics_,
         "history": model.history_, "mu": model.mu_, "sigma2": model.sigma2_,
         "biases": model.factors_.biases,
+        "table_columns": [] if table is None else [str(c) for c in table.columns],
         "arrays": {k: {"sha256": _digest(v), "shape": list(v.shape), "dtype": str(v.dtype)}
                    for k, v in arrays.items()},
     }
@@ -133,4 +140,7 @@ def load_model(path):
     model._set_factors(F, manifest["mu"], manifest["sigma2"], a["prior_weight"])
     model.metrics_ = manifest["metrics"]
     model.extras_ = {k[len("extra_"):]: v for k, v in a.items() if k.startswith("extra_")}
+    columns = manifest.get("table_columns", [])
+    model.item_table_ = pd.DataFrame({c: a[f"table_{c}"] for c in columns},
+                                     index=pd.Index(model.item_ids_, name="item")) if columns else None
     return model

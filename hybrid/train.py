@@ -22,7 +22,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from .blocks import design, groups, gather, solve_rows
+from .blocks import design, solve_rows
+from .prior import learn_prior, predictive_sigma2, well_rated
 
 _CHUNK = 1 << 19  # ratings per chunk when evaluating residuals
 
@@ -61,6 +62,8 @@ class Factors:
     P: np.ndarray
     biases: bool = True
     history: list = field(default_factory=list)
+    lam_map: float | None = None
+    scales: tuple = (1.0, 1.0)
 
     def split(self, z):
         """(bias, vectors) of a block; bias is ``None`` without biases."""
@@ -140,6 +143,13 @@ class MapSolver:
         self.s = np.maximum(self.s, 0.0)
         self.At = At
 
+    def with_penalty(self, lam_map) -> "MapSolver":
+        """The same decomposition with another penalty (no new factorisation)."""
+        other = object.__new__(MapSolver)
+        other.__dict__.update(self.__dict__)
+        other.lam_map = lam_map
+        return other
+
     def solve(self, Z_rated, P):
         D, Q = np.linalg.eigh(P)
         c = self.lam_map / np.maximum(D, 1e-12)
@@ -151,6 +161,21 @@ class MapSolver:
             core = self.V.T @ Zq
             Wq = self.At.T @ (self.V @ (core / (self.s[:, None] + c[None, :])))
         return np.asarray(Wq) @ Q.T
+
+
+    def leverages(self, rows, P):
+        """Each rated item's leverage on its own projection, per eigen-direction of ``P``.
+
+        ``rows`` index the rated items as passed to the constructor; the result
+        (len(rows), d) lets a residual be turned into its leave-one-out value.
+        """
+        D, _ = np.linalg.eigh(P)
+        c = self.lam_map / np.maximum(D, 1e-12)
+        if self.primal:
+            U2 = np.asarray(self.At[rows] @ self.V) ** 2
+            return U2 @ (1.0 / (self.s[:, None] + c[None, :]))
+        U2 = self.V[rows] ** 2
+        return U2 @ (self.s[:, None] / (self.s[:, None] + c[None, :]))
 
 
 def map_step(F: Factors, A, rated, solver: MapSolver):
@@ -166,32 +191,9 @@ def map_step(F: Factors, A, rated, solver: MapSolver):
         F.item[unrated] = A[unrated] @ F.W
 
 
-def em_prior(data, F: Factors, A, weight, sigma2, rated):
-    """EM update of the item prior precision ``P = sigma^2 Psi^-1``.
-
-    ``Psi`` is the weighted mean over rated items of
-    ``(z_i - m_i)(z_i - m_i)^T + Sigma_i``, with the posterior covariance
-    ``Sigma_i = sigma^2 (B_i^T B_i + c_i P)^-1``.
-    """
-    ub, ut = F.split(F.user)
-    R = data.by_item
-    Fe = design(ut, ub)
-    d = F.item.shape[1]
-    S = np.zeros((d, d))
-    for g in groups(np.diff(R.indptr), d):
-        T, _ = gather(R.indptr, R.indices, R.data, g, Fe, _offsets(F, F.user))
-        A_g = T.transpose(0, 2, 1) @ T + weight[g, None, None] * F.P
-        S += sigma2 * np.einsum("g,gij->ij", weight[g], np.linalg.inv(A_g))
-    D = (F.item - A @ F.W)[rated]
-    S += np.einsum("i,ij,ik->jk", weight[rated], D, D)
-    Psi = S / max(int(rated.sum()), 1)
-    Psi = 0.5 * (Psi + Psi.T) + 1e-9 * np.trace(Psi) / d * np.eye(d)
-    return sigma2 * np.linalg.inv(Psi)
-
-
 def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epochs, tol,
                 seed, prior="fixed", weight=None, biases=True, n_jobs=1, validate=None,
-                on_epoch=None, P0=None):
+                on_epoch=None, P0=None, em_rounds=30, tune_map=False):
     """Run the alternating solver; return the fitted :class:`Factors` and sigma^2.
 
     Parameters
@@ -205,6 +207,11 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
         ``on_epoch(record)`` with the epoch's figures, for progress display.
     P0 : ndarray, optional
         Starting prior precision (default ``lam_item * I``).
+    em_rounds : int
+        Most rounds of item and map steps that settle under the learned prior.
+    tune_map : bool
+        With the learned prior, choose the map penalty on the held-out items too
+        (the chosen value is returned as ``F.lam_map``).
     """
     n_users, n_items = data.by_user.shape
     d = rank + 1 if biases else rank
@@ -217,19 +224,13 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
                 P=lam_item * np.eye(d) if P0 is None else np.array(P0, float), biases=biases)
     rated = np.diff(data.by_item.indptr) > 0
     solver = MapSolver(A[rated], weight[rated], lam_map)
-    learn = prior == "learned"
     previous = np.inf
-    sigma2 = np.nan
     for epoch in range(1, epochs + 1):
         t0 = time.perf_counter()
-        edf_u = user_step(data, F, lam_user, n_jobs, with_edf=True)
-        if learn and epoch > 1:
-            F.P = em_prior(data, F, A, weight, sigma2, rated)
-        edf_i = item_step(data, F, A, weight, n_jobs, with_edf=True)
+        user_step(data, F, lam_user, n_jobs)
+        item_step(data, F, A, weight, n_jobs)
         map_step(F, A, rated, solver)
         total, sse = objective(data, F, A, lam_user, lam_map, weight)
-        # residual variance, corrected by the ridge fits' effective degrees of freedom
-        sigma2 = sse / max(data.nnz - edf_u - edf_i, 1.0)
         record = {"epoch": epoch, "objective": total, "train_rmse": float(np.sqrt(sse / data.nnz)),
                   "valid_rmse": float(validate(F)) if validate else float("nan"),
                   "seconds": time.perf_counter() - t0}
@@ -239,10 +240,25 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
         if abs(previous - total) <= tol * abs(total):
             break
         previous = total
+    edf_u = user_step(data, F, lam_user, n_jobs, with_edf=True)
+    edf_i = item_step(data, F, A, weight, n_jobs, with_edf=True)
+    sse = objective(data, F, A, lam_user, lam_map, weight)[1]
+    fit_sigma2 = sse / max(data.nnz - edf_u.sum() - edf_i.sum(), 1.0)
+    counts = np.diff(data.by_item.indptr)
+    sigma2 = predictive_sigma2(data, F, lam_user, fit_sigma2, well_rated(counts))
+    if prior == "learned":
+        F.P, lam_map, sigma2, F.scales = learn_prior(data, F, A, weight, sigma2, lam_user, lam_map,
+                                                     seed, n_jobs, tune_map=tune_map)
+        solver = solver.with_penalty(lam_map)
+        for _ in range(em_rounds):  # the map and items settle under the learned prior
+            W_old = F.W
+            item_step(data, F, A, weight, n_jobs)
+            map_step(F, A, rated, solver)
+            if np.abs(F.W - W_old).max() <= 1e-6 * max(np.abs(W_old).max(), 1.0):
+                break
     # a last item step (a descent step like any other) makes every rated
     # item's vector the exact posterior mean under the final users, map and
     # prior: the planner samples around these very vectors
-    edf_i = item_step(data, F, A, weight, n_jobs, with_edf=True)
-    sse = objective(data, F, A, lam_user, lam_map, weight)[1]
-    sigma2 = sse / max(data.nnz - edf_u - edf_i, 1.0)
+    item_step(data, F, A, weight, n_jobs)
+    F.lam_map = lam_map
     return F, float(sigma2)

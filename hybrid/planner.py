@@ -1,0 +1,283 @@
+"""Coverage planner: how far each item's neighbour list can be trusted, and what to collect.
+
+For every item: its status (no ratings yet, under-covered, trusted), its
+stability now (expected overlap of its top-k list with the list it would
+have once its vector is known; see :mod:`hybrid.posterior`), the ratings it
+needs to reach the target, and, given a budget, how many to collect for it
+and from whom (:mod:`hybrid.campaign`).  Ratings are personal data and a
+campaign contacts people: ask only members who agreed to be asked, respect
+opt-outs and local data-protection law.  Every number here is an estimate.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from .campaign import (AIMS, allocate_gain, allocate_reach, asks_table, choose_askees, propensity)
+from .errors import InputError
+from .posterior import covariances, item_grams, stability, vector_part
+
+GRID = np.array([0, 1, 2, 3, 5, 8, 12, 20, 30, 50, 80, 120, 200, 300, 500])
+STATUS = ("no ratings yet", "under-covered", "trusted")
+_ITEMS_PER_BLOCK = 256
+
+
+@dataclass
+class Plan:
+    """What the planner found: one row per item, the asks, and the stability curves."""
+
+    items: pd.DataFrame
+    asks: pd.DataFrame
+    curves: pd.DataFrame
+    settings: dict = field(default_factory=dict)
+
+    def summary(self) -> dict:
+        counts = self.items["status"].value_counts()
+        out = {s: int(counts.get(s, 0)) for s in STATUS}
+        out["ratings planned"] = int(self.items["planned"].sum())
+        out["items reaching target with the plan"] = int(self.items["reaches_target"].sum())
+        out["asks"] = len(self.asks)
+        return out
+
+
+def responder_moment(model, mode="active", scores=None, threshold=None):
+    """Mean of ``b b^T`` (b = [1, theta_u]) over the users expected to answer.
+
+    ``active``: all users, weighted by their response propensity.  ``likely``:
+    per item, the users whose expected rating is at least ``threshold``
+    (needs ``scores``, the item x user block).  Returns (d, d) or (b, d, d).
+    """
+    B = _user_design(model)
+    w = propensity(model.user_counts_)
+    if mode == "active":
+        return np.einsum("u,ud,ue->de", w, B, B) / w.sum()
+    mask = (scores >= threshold) * w[None, :]
+    total = np.maximum(mask.sum(1), 1e-12)
+    outer = np.einsum("ud,ue->ude", B, B).reshape(len(B), -1)
+    return (mask @ outer / total[:, None]).reshape(len(scores), B.shape[1], B.shape[1])
+
+
+def _user_design(model):
+    F = model.factors_
+    ub, ut = F.split(F.user)
+    return np.hstack([np.ones((len(ut), 1)), ut]) if ub is not None else ut
+
+
+def _chol(model, cov):
+    Cx = vector_part(model, cov)
+    return np.linalg.cholesky(Cx + 1e-12 * np.eye(Cx.shape[-1]))
+
+
+class Assessor:
+    """Evaluates stability of any items at any number of extra ratings, with fixed draws."""
+
+    def __init__(self, model, k=10, draws=64, seed=0, pool_min_ratings=20, responders="active",
+                 responder_threshold=None, pool=None):
+        self.model = model
+        self.k = k
+        off = 1 if model.biases else 0
+        self.off = off
+        self.vectors = model.item_blocks_[:, off:]
+        self.weight = model.prior_weight_
+        self.grams = item_grams(model)
+        self.cov_now = covariances(model, self.grams, self.weight)
+        prior_cov = model.sigma2_ * np.linalg.inv(model.prior_precision_)
+        prior_var = np.trace(vector_part(model, prior_cov[None])[0])
+        # relative variance: share of the prior's spread the ratings have not yet removed
+        rel = np.einsum("bii->b", vector_part(model, self.cov_now)) * self.weight / prior_var
+        self.relative_variance = rel
+        self.pool = self._pool(pool_min_ratings) if pool is None else np.asarray(pool)
+        if len(self.pool) <= k:
+            raise InputError(f"only {len(self.pool)} rated items can serve as neighbours; "
+                             f"need more than k={k}: lower k")
+        self.pool_pos = pd.Index(self.pool).get_indexer(np.arange(len(self.vectors)))
+        self.eps = np.random.default_rng(seed).standard_normal((draws, self.vectors.shape[1]))
+        self.responders = responders
+        self.threshold = responder_threshold
+        self.C = responder_moment(model, "active") if responders == "active" else None
+
+    def _pool(self, min_ratings):
+        """Trusted candidates: items with at least ``min_ratings`` ratings, or the
+        ``4k`` most-rated items of a catalogue with too few of those (the rule
+        used is kept in ``pool_rule``)."""
+        counts = self.model.item_counts_
+        pool = np.flatnonzero(counts >= min_ratings)
+        self.pool_rule = f"items with {min_ratings} or more ratings"
+        if len(pool) < 4 * self.k:
+            pool = np.argsort(-counts, kind="stable")[:4 * self.k]
+            pool = pool[counts[pool] > 0]
+            self.pool_rule = f"the {len(pool)} most-rated items"
+        return np.sort(pool)
+
+    def extra_moment(self, items):
+        if self.C is not None:
+            return np.broadcast_to(self.C, (len(items),) + self.C.shape)
+        z = self.model.item_blocks_[items]
+        scores = next(self.model.score_blocks(z, chunk=len(z)))[1]
+        return responder_moment(self.model, "likely", scores, self.threshold)
+
+    def at(self, items, extra):
+        """(stability, se) of ``items`` after ``extra`` more ratings each (array or scalar)."""
+        items = np.asarray(items)
+        extra = np.broadcast_to(np.asarray(extra, float), items.shape)
+        mean, se = np.empty(len(items)), np.empty(len(items))
+        for s in range(0, len(items), _ITEMS_PER_BLOCK):
+            blk = items[s:s + _ITEMS_PER_BLOCK]
+            more = extra[s:s + _ITEMS_PER_BLOCK, None, None] * self.extra_moment(blk)
+            cov = covariances(self.model, self.grams[blk], self.weight[blk], more)
+            mean[s:s + len(blk)], se[s:s + len(blk)] = stability(
+                self.vectors[blk], _chol(self.model, cov), self.vectors[self.pool], self.k, self.eps,
+                exclude=self.pool_pos[blk])
+        return mean, se
+
+
+def ratings_needed(assessor, items, now, target, max_needed, grid=GRID):
+    """Curves on the grid and the smallest number of extra ratings reaching ``target``.
+
+    Returns (curves (m, G), needed (m,) float with NaN for "more than max_needed").
+    """
+    grid = grid[grid <= max_needed]
+    curves = np.empty((len(items), len(grid)))
+    curves[:, 0] = now
+    for j, n in enumerate(grid[1:], start=1):
+        live = curves[:, j - 1] < 0.999  # a settled curve stays settled
+        curves[~live, j] = curves[~live, j - 1]
+        if live.any():
+            curves[live, j] = assessor.at(items[live], n)[0]
+    needed = np.full(len(items), np.nan)
+    needed[now >= target] = 0
+    reach = curves >= target
+    first = np.where(reach.any(1), reach.argmax(1), -1)
+    todo = np.flatnonzero((first > 0))
+    lo, hi = grid[first[todo] - 1].astype(float), grid[first[todo]].astype(float)
+    while todo.size and (hi - lo > 1).any():   # bisection, vectorised over items
+        mid = np.floor((lo + hi) / 2)
+        open_ = hi - lo > 1
+        val = np.full(len(todo), -np.inf)
+        val[open_] = assessor.at(items[todo[open_]], mid[open_])[0]
+        ok = val >= target
+        hi = np.where(open_ & ok, mid, hi)
+        lo = np.where(open_ & ~ok, mid, lo)
+    needed[todo] = hi
+    return curves, needed, grid
+
+
+def priority_weights(model, column):
+    """Weights from a raw attribute column: numbers as given (>= 0), dates earlier-first."""
+    if column is None:
+        return np.ones(len(model.item_ids_))
+    table = getattr(model, "item_table_", None)
+    if table is None or column not in table.columns:
+        known = [] if table is None else list(table.columns)
+        raise InputError(f"priority column '{column}' is not among the model's attribute columns "
+                         f"({', '.join(known) or 'none stored'})")
+    raw = table[column].reindex(model.item_ids_)
+    num = pd.to_numeric(raw, errors="coerce")
+    if num.notna().mean() > 0.5:
+        return np.clip(num.fillna(num.median()).to_numpy(float), 0, None)
+    dates = pd.to_datetime(raw, errors="coerce", format="mixed")
+    if dates.notna().mean() > 0.5:
+        days = (dates - dates.min()).dt.days.fillna(0).to_numpy(float)
+        span = max(days.max(), 1.0)
+        return 1.0 - 0.9 * days / span    # the soonest launch weighs 1, the latest 0.1
+    raise InputError(f"priority column '{column}': expected numbers or dates, found {raw.iloc[0]!r}")
+
+
+def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, seed=0, *,
+         draws=64, max_needed=200, aim="reach", per_item=None, responders="active",
+         responder_threshold=None, pool_min_ratings=20) -> Plan:
+    """Assess every item and, given a budget, plan a sampling campaign.
+
+    Parameters
+    ----------
+    model : HybridFactorModel
+    target : float
+        Stability an item must reach to count as trusted.
+    k : int
+        Length of the neighbour list.
+    budget : int, optional
+        Ratings to collect in all; ``None`` assesses without planning.
+    per_user : int, optional
+        Most asks per user across the campaign (default: no cap beyond one per item).
+    priority : str, optional
+        Attribute column weighting items (numbers, or launch dates: sooner first).
+    seed : int
+        Seed of the posterior draws.
+    aim : {'reach', 'gain'}
+        Maximise the (weighted) number of items reaching the target, or the total gain.
+    per_item : int, optional
+        Most ratings planned for one item.
+
+    Returns
+    -------
+    Plan
+
+    Examples
+    --------
+    >>> from hybrid import HybridFactorModel
+    >>> from hybrid.samples import tasting_club
+    >>> club = tasting_club(n_members=500, n_lots=80, n_new=4, seed=3)
+    >>> m = HybridFactorModel(rank=3, epochs=8, schema=club.schema).fit(club.ratings, club.lots)
+    >>> p = plan(m, k=5, budget=40, draws=16)
+    >>> sorted(p.items["status"].unique())[0] in ("no ratings yet", "trusted", "under-covered")
+    True
+    """
+    if aim not in AIMS:
+        raise InputError(f"aim must be one of {', '.join(AIMS)}, found {aim!r}")
+    if not 0 < target <= 1:
+        raise InputError(f"target must be in (0, 1], found {target!r}")
+    threshold = responder_threshold or (model.settings_ or {}).get("score", {}).get("liked", 4.0) \
+        if responders == "likely" else None
+    A = Assessor(model, k, draws, seed, pool_min_ratings, responders, threshold)
+    items = np.arange(len(model.item_ids_))
+    now, se = A.at(items, 0.0)
+    curves, needed, grid = ratings_needed(A, items, now, target, max_needed)
+    counts = model.item_counts_
+    status = np.where(counts == 0, STATUS[0], np.where(now >= target, STATUS[2], STATUS[1]))
+    weights = priority_weights(model, priority)
+    planned = np.zeros(len(items), dtype=np.int64)
+    open_items = now < target
+    if budget:
+        cap = np.inf if per_item is None else per_item
+        if aim == "reach":
+            cost = np.where(open_items & (needed <= cap), needed, np.nan)
+            planned = allocate_reach(cost, weights, budget)
+        else:
+            planned = allocate_gain(np.where(open_items[:, None], curves, curves[:, :1]), grid, weights,
+                                    budget, per_item)
+    reaches = (now >= target) | ((planned > 0) & np.isfinite(needed) & (planned >= needed))
+    table = pd.DataFrame({
+        "item": model.item_ids_, "status": status, "ratings": counts, "stability": now,
+        "stability_se": se, "needed": pd.array(np.where(np.isfinite(needed), needed, np.nan)).astype("Int64"),
+        "needed_label": [f"{int(n)}" if np.isfinite(n) else f"more than {int(grid[-1])}" for n in needed],
+        "planned": planned, "reaches_target": reaches, "priority": weights,
+        "in_pool": np.isin(items, A.pool), "relative_variance": A.relative_variance})
+    asks = _asks(model, A, planned, weights, per_user) if budget else asks_table([])
+    curve_frame = pd.DataFrame(curves, index=pd.Index(model.item_ids_, name="item"),
+                               columns=[int(g) for g in grid])
+    settings = {"target": target, "k": k, "budget": budget, "per_user": per_user, "priority": priority,
+                "seed": seed, "draws": draws, "aim": aim, "pool_size": int(len(A.pool)), "pool_rule": A.pool_rule,
+                "responders": responders}
+    return Plan(table, asks, curve_frame, settings)
+
+
+def _asks(model, A: Assessor, planned, weights, per_user):
+    """Whom to ask for every planned item, most important items first."""
+    B = _user_design(model)
+    weight = propensity(model.user_counts_)
+    left = np.full(len(B), np.iinfo(np.int64).max if per_user is None else int(per_user))
+    R = model._data().by_item
+    rows = []
+    order = np.flatnonzero(planned > 0)
+    order = order[np.lexsort((planned[order], -weights[order]))]
+    for i in order:
+        eligible = np.ones(len(B), bool)
+        eligible[R.indices[R.indptr[i]:R.indptr[i + 1]]] = False
+        users, gains = choose_askees(B, A.cov_now[i], model.sigma2_, int(planned[i]), eligible, weight, left)
+        if users:
+            expected = model._combine(model.user_blocks_[users], np.repeat(model.item_blocks_[[i]], len(users), 0))
+            rows += [(model.item_ids_[i], model.user_ids_[u], r + 1, g, e)
+                     for r, (u, g, e) in enumerate(zip(users, gains, expected))]
+    return asks_table(rows)

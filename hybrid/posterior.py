@@ -1,0 +1,142 @@
+"""Item posteriors and the stability of neighbour lists under them.
+
+With the user side fixed, an item's block ``z_i = [b_i, x_i]`` has the
+Gaussian posterior of Bayesian linear regression (Bishop, Pattern
+Recognition and Machine Learning, 2006, section 3.3):
+
+    mean = the trainer's item solution,
+    Sigma_i = sigma^2 (B_i^T B_i + c_i P)^-1,
+
+``B_i`` the rows ``[1, theta_u]`` of the item's raters and ``P`` the prior
+precision the trainer used (learned by EM, or ``lam_item * I``).  The
+*stability* of an item is the expected overlap of its top-k neighbour list
+with the list it would have once its vector is known: the share of the
+current list that a draw from the posterior keeps in its own top k.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from .blocks import design, row_grams
+
+_BUDGET = 1 << 22  # floats in one block of draw x candidate distances
+
+
+def item_grams(model, rows=None):
+    """``B_i^T B_i`` (n, d, d) of the model's items (or ``rows``) at the fitted users."""
+    F = model.factors_
+    ub, ut = F.split(F.user)
+    R = model._data().by_item
+    if rows is not None:
+        R = R[rows]
+    offset = np.zeros(len(ut)) if ub is None else ub
+    return row_grams(R.indptr, R.indices, R.data, design(ut, ub), offset)[0]
+
+
+def covariances(model, grams, weight, extra=None):
+    """Posterior covariances ``sigma^2 (G + extra + c P)^-1`` of a block of items."""
+    prec = grams + weight[:, None, None] * model.prior_precision_
+    if extra is not None:
+        prec = prec + extra
+    return model.sigma2_ * np.linalg.inv(prec)
+
+
+def vector_part(model, cov):
+    """The covariance of the vector ``x`` (dropping the bias row and column)."""
+    return cov[:, 1:, 1:] if model.biases else cov
+
+
+def draws_for(L: np.ndarray, eps: np.ndarray) -> np.ndarray:
+    """Offsets ``L eps`` (b, S, r) of every item's draws; ``eps`` (S, r) shared by all items."""
+    return np.einsum("bij,sj->bsi", L, eps)
+
+
+def _sq(X):
+    return np.einsum("...i,...i->...", X, X)
+
+
+def stability(means, chol, pool, k, eps, exclude=None, shortlist=256):
+    """Expected overlap of each item's top-k list with the lists of its posterior draws.
+
+    Parameters
+    ----------
+    means : ndarray (b, r)
+        Posterior mean vectors (the model's item vectors).
+    chol : ndarray (b, r, r)
+        Cholesky factors of the vectors' posterior covariances.
+    pool : ndarray (n, r)
+        Candidate vectors (trusted items), taken as known.
+    k : int
+        Length of the neighbour list.
+    eps : ndarray (S, r)
+        Standard normal draws, the same for every item (common random numbers).
+    exclude : ndarray (b,), optional
+        Index in ``pool`` of each item itself, or -1.
+    shortlist : int
+        Candidates nearest the mean that are tried first; a draw whose k-th
+        distance cannot be beaten from outside the shortlist (by the
+        triangle inequality) is exact there, any other draw is redone
+        against the whole pool, so the result is exact either way.
+
+    Returns
+    -------
+    mean, se : ndarray (b,)
+        The estimated expected overlap and its standard error over draws.
+
+    Examples
+    --------
+    >>> pool = np.array([[-1.0], [1.0]])
+    >>> eps = np.random.default_rng(0).standard_normal((4000, 1))
+    >>> m, se = stability(np.array([[-0.5]]), np.array([[[1.0]]]), pool, 1, eps)
+    >>> bool(abs(m[0] - 0.6915) < 3 * se[0])     # P(x < 0) for x ~ N(-0.5, 1)
+    True
+    """
+    b, r = means.shape
+    n = len(pool)
+    k = min(k, n - (0 if exclude is None else 1))
+    exclude = np.full(b, -1) if exclude is None else np.asarray(exclude)
+    M = int(min(n, max(shortlist, 4 * k)))
+    c2 = _sq(pool)
+    D = c2[None, :] - 2.0 * means @ pool.T + _sq(means)[:, None]
+    rows = np.flatnonzero(exclude >= 0)
+    D[rows, exclude[rows]] = np.inf
+    short = np.argpartition(D, M - 1, axis=1)[:, :M] if M < n else np.tile(np.arange(n), (b, 1))
+    Ds = np.take_along_axis(D, short, 1)
+    order = np.argsort(Ds, axis=1, kind="stable")
+    short, Ds = np.take_along_axis(short, order, 1), np.take_along_axis(Ds, order, 1)
+    listed = short[:, :k]                                   # the current top-k lists
+    radius = np.sqrt(np.maximum(Ds[:, -1], 0.0)) if M < n else np.full(b, np.inf)
+    offsets = draws_for(chol, eps)                          # (b, S, r)
+    X = means[:, None, :] + offsets
+    Cs = pool[short]                                        # (b, M, r)
+    DT = _sq(X)[..., None] + c2[short][:, None, :] - 2.0 * X @ Cs.transpose(0, 2, 1)
+    self_in = short == exclude[:, None]
+    DT = np.where(self_in[:, None, :], np.inf, DT)
+    kth = np.partition(DT, k - 1, axis=2)[..., k - 1]       # (b, S)
+    overlap = (DT[..., :k] <= kth[..., None]).sum(-1) / k
+    exact = np.sqrt(np.maximum(kth, 0.0)) <= radius[:, None] - np.sqrt(_sq(offsets))
+    if not exact.all():
+        bi, si = np.nonzero(~exact)
+        overlap[bi, si] = _full_pool(X[bi, si], pool, c2, listed[bi], exclude[bi], k)
+    S = eps.shape[0]
+    return overlap.mean(1), overlap.std(1, ddof=1) / np.sqrt(S) if S > 1 else np.zeros(b)
+
+
+def _full_pool(X, pool, c2, listed, exclude, k):
+    """Overlap for single draws against the whole pool, in bounded blocks."""
+    out = np.empty(len(X))
+    step = max(1, _BUDGET // len(pool))
+    for s in range(0, len(X), step):
+        x = X[s:s + step]
+        D = _sq(x)[:, None] + c2[None, :] - 2.0 * x @ pool.T
+        ex = exclude[s:s + step]
+        rows = np.flatnonzero(ex >= 0)
+        D[rows, ex[rows]] = np.inf
+        kth = np.partition(D, k - 1, axis=1)[:, k - 1]
+        out[s:s + step] = (np.take_along_axis(D, listed[s:s + step], 1) <= kth[:, None]).sum(1) / k
+    return out
+
+
+def overlap_of_lists(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row-wise share of list ``a`` found in list ``b`` (both (m, k) index arrays)."""
+    return (a[:, :, None] == b[:, None, :]).any(axis=2).mean(axis=1)

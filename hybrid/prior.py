@@ -1,0 +1,168 @@
+"""The learned item prior: how far items fall from their attribute projection.
+
+The planner's posteriors are only as true as this prior.  Its spread must be
+the spread of an item the model did not fit: in-sample, the users' vectors
+and the map have adapted to each rated item, which pulls it toward its own
+projection, so in-sample deviations understate how far a new item falls.
+The estimate is therefore cross-fitted: a seeded set of well-rated items is
+held out, the users are re-solved without their ratings and the map without
+their vectors, the held-out items are solved against those, and an EM
+iteration (Dempster, Laird and Rubin, 1977) gives the covariance of their
+deviations from the out-of-sample projection, net of their own posterior
+spread (the empirical-Bayes estimate of Morris, JASA 1983).
+"""
+from __future__ import annotations
+
+import numpy as np
+import scipy.sparse as sp
+
+from .blocks import design, gather, groups, row_grams, solve_rows
+
+
+def well_rated(counts, min_ratings=20, least=50):
+    """Items whose ratings pin their vectors down: ``min_ratings`` or more, or the
+    ``least`` most-rated if too few reach that."""
+    counts = np.asarray(counts)
+    members = counts >= min_ratings
+    if members.sum() < least:
+        members = np.zeros(len(counts), bool)
+        members[np.argsort(-counts, kind="stable")[:least]] = True
+        members &= counts > 0
+    return members
+
+
+def predictive_sigma2(data, F, lam_user, sigma2, members):
+    """Variance of a *new* rating around ``theta_u . x_i`` as the item step sees it.
+
+    The item step treats the users' vectors as known, but each is itself an
+    estimate, so a rating the users were not fitted to strays further than
+    the noise: by ``sigma^2 c^T (G_u + lam I)^-1 c`` for item row ``c``.  With
+    the in-sample leverage ``h`` of each rating, that out-of-sample term is
+    ``h / (1 - h)``, so the effective variance is ``sigma^2 / (1 - h)``
+    averaged over the ratings of well-rated items.
+    """
+    ib, ix = F.split(F.item)
+    R = data.by_user
+    Fe = design(ix, ib)
+    d = F.user.shape[1]
+    offset = np.zeros(len(ix)) if ib is None else ib
+    total, count = 0.0, 0
+    for g in groups(np.diff(R.indptr), d):
+        T, _ = gather(R.indptr, R.indices, R.data, g, Fe, offset)
+        H = np.linalg.inv(T.transpose(0, 2, 1) @ T + lam_user * np.eye(d))
+        h = np.einsum("gld,gde,gle->gl", T, H, T)
+        lens = R.indptr[g + 1] - R.indptr[g]
+        pos = np.minimum(R.indptr[g][:, None] + np.arange(T.shape[1])[None, :], R.nnz - 1)
+        keep = (np.arange(T.shape[1])[None, :] < lens[:, None]) & members[R.indices[pos]]
+        total += float(np.sum(1.0 / (1.0 - np.minimum(h[keep], 0.9))))
+        count += int(keep.sum())
+    return sigma2 * total / max(count, 1)
+
+
+def held_out_set(counts, seed, fraction=0.5, most=400, min_ratings=60, least=100):
+    """A seeded half of the well-rated items (``min_ratings`` or more, or the
+    ``least`` most-rated), held out to measure the prior."""
+    members = np.flatnonzero(well_rated(counts, min_ratings, least))
+    n = int(min(most, max(1, round(fraction * len(members)))))
+    return np.sort(np.random.default_rng(seed + 17).choice(members, n, replace=False))
+
+
+def _without(data, held):
+    """The rating data with the held-out items' ratings removed (same shapes)."""
+    from .train import RatingData
+    keep = np.ones(data.by_item.shape[0])
+    keep[held] = 0.0
+    by_item = sp.diags(keep) @ data.by_item
+    by_item.eliminate_zeros()
+    by_item = by_item.tocsr()
+    by_user = by_item.T.tocsr()
+    by_user.sort_indices()
+    return RatingData(by_user, by_item, data.mu)
+
+
+def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-5):
+    """EM for the covariance of item blocks around known prior means.
+
+    ``grams`` (n, d, d) and ``rhs`` (n, d) are each item's ``B^T B`` and
+    ``B^T y`` at fixed users.  Returns the converged ``Psi``.
+    """
+    n, d = rhs.shape
+    for _ in range(rounds):
+        P = sigma2 * np.linalg.inv(Psi)
+        prec = grams + P
+        z = np.linalg.solve(prec, (rhs + prior_mean @ P)[..., None])[..., 0]
+        D = z - prior_mean
+        new = (D.T @ D + sigma2 * np.linalg.inv(prec).sum(0)) / n
+        new = 0.5 * (new + new.T) + 1e-9 * np.trace(new) / d * np.eye(d)
+        step = new + 0.8 * (new - Psi)        # over-relaxed: plain EM crawls here
+        Psi_next = step if np.linalg.eigvalsh(step).min() > 0 else new
+        if np.abs(Psi_next - Psi).max() <= tol * np.abs(Psi).max():
+            return Psi_next
+        Psi = Psi_next
+    return Psi
+
+
+ROUNDS = 10
+LAM_MAP_GRID = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0, 300.0, 1000.0)
+
+
+def _fold(data, F, A, weight, held, lam_user, lam_map, rounds, n_jobs):
+    """Users, items and map re-fitted without the ``held`` items' ratings, and
+    the held items' statistics against them."""
+    from .train import Factors, MapSolver, item_step, map_step, user_step
+
+    out = _without(data, held)
+    G = Factors(F.user.copy(), F.item.copy(), F.W.copy(), F.P.copy(), F.biases)
+    rated = np.diff(out.by_item.indptr) > 0
+    solver = MapSolver(A[rated], weight[rated], lam_map)
+    for _ in range(rounds):  # undo the co-adaptation: users and map without the held-out items
+        user_step(out, G, lam_user, n_jobs)
+        item_step(out, G, A, weight, n_jobs)
+        map_step(G, A, rated, solver)
+    ub, ut = G.split(G.user)
+    R = data.by_item[held]
+    Fe = design(ut, ub)
+    offset = np.zeros(len(ut)) if ub is None else ub
+    grams, rhs = row_grams(R.indptr, R.indices, R.data, Fe, offset)
+    off = 1 if G.biases else 0
+    pool = np.flatnonzero(np.diff(out.by_item.indptr) >= 20)
+    return {"G": G, "solver": solver, "rated": rated, "held": held, "R": R, "Fe": Fe,
+            "offset": offset, "grams": grams, "rhs": rhs, "pool": G.item[pool, off:]}
+
+
+def learn_prior(data, F, A, weight, sigma2, lam_user, lam_map, seed, n_jobs=1, rounds=ROUNDS,
+                tune_map=False, recalibrate=True, folds=2):
+    """The item prior precision ``P = sigma^2 Psi^-1``, ``Psi`` cross-fitted (module doc).
+
+    The well-rated items are split into ``folds``; each fold is held out in
+    turn.  With ``tune_map`` the map penalty is also chosen on the held-out
+    items; with ``recalibrate`` the prior and noise scales are checked on them
+    too (:mod:`hybrid.recalibrate`).  Returns ``(P, lam_map, sigma2,
+    (kappa_prior, kappa_noise))`` with ``sigma2`` the recalibrated noise variance.
+    """
+    counts = np.diff(data.by_item.indptr)
+    held = held_out_set(counts, seed, fraction=1.0, most=400 * folds)
+    parts = [_fold(data, F, A, weight, h, lam_user, lam_map, rounds, n_jobs)
+             for h in np.array_split(held, folds) if len(h)]
+    if tune_map:
+        def error(lam):
+            total = 0.0
+            for f in parts:
+                # the held-out items' blocks from their ratings alone (a faint prior keeps them finite)
+                z = np.linalg.solve(f["grams"] + 1e-3 * f["G"].P, f["rhs"][..., None])[..., 0]
+                W = f["solver"].with_penalty(lam).solve(f["G"].item[f["rated"]], f["G"].P)
+                D = z - np.asarray(A[f["held"]] @ W)
+                total += float(np.einsum("ij,jk,ik->", D, f["G"].P, D))
+            return total
+        lam_map = min(LAM_MAP_GRID, key=error)
+    for f in parts:
+        W = f["solver"].with_penalty(lam_map).solve(f["G"].item[f["rated"]], f["G"].P)
+        f["m"] = np.asarray(A[f["held"]] @ W)
+    cat = lambda key: np.concatenate([f[key] for f in parts])
+    Psi = em_covariance(cat("grams"), cat("rhs"), cat("m"), sigma2, sigma2 * np.linalg.inv(F.P))
+    scales = (1.0, 1.0)
+    if recalibrate and all(len(f["pool"]) > 40 for f in parts):
+        from .recalibrate import variance_scales
+        scales = variance_scales(parts, Psi, sigma2, 1 if F.biases else 0, seed=seed)
+    kp, kn = scales
+    return kn * sigma2 * np.linalg.inv(kp * Psi), lam_map, kn * sigma2, scales
