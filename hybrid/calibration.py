@@ -42,9 +42,12 @@ def _solve_probes(model, A_probe, indptr, idx, vals):
     offset = np.zeros(len(ut)) if ub is None else ub
     counts = np.diff(indptr)
     weight = model._weight_for_counts(counts)
-    z, _ = solve_rows(indptr, idx, vals, Fe, offset, F.P, np.asarray(A_probe @ F.W), weight)
+    P = model.new_rating_precision_
+    z, _ = solve_rows(indptr, idx, vals, Fe, offset, P, np.asarray(A_probe @ F.W), weight)
     grams = row_grams(indptr, idx, vals, Fe, offset)[0]
-    return z, grams, weight
+    # no rater saw these ratings: they count with the variance of a new rating
+    cov = model.sigma2_new_ * np.linalg.inv(grams + weight[:, None, None] * P)
+    return z, cov
 
 
 def calibrate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, *, ns=NS,
@@ -69,13 +72,11 @@ def calibrate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, *, 
     table["order"] = table.groupby("item_code")["draw"].rank(method="first") - 1
     A_probe = model.features_.transform(attributes.loc[probes])
     off = 1 if model.biases else 0
-    z_full, grams_full, w_full = _solve_probes(model, A_probe, *_probe_rows(model, table, np.ones(len(table), bool)))
-    cov_full = model.sigma2_ * np.linalg.inv(grams_full + w_full[:, None, None] * model.prior_precision_)
+    z_full, cov_full = _solve_probes(model, A_probe, *_probe_rows(model, table, np.ones(len(table), bool)))
     full_lists = nearest(z_full[:, off:], pool, k)[0]
     rows = []
     for n in ns:
-        z, grams, weight = _solve_probes(model, A_probe, *_probe_rows(model, table, table["order"].to_numpy() < n))
-        cov = model.sigma2_ * np.linalg.inv(grams + weight[:, None, None] * model.prior_precision_)
+        z, cov = _solve_probes(model, A_probe, *_probe_rows(model, table, table["order"].to_numpy() < n))
         # the yardstick is the full-data list, not the truth: given n ratings, the
         # full-data vector is spread around the n-rating one by Sigma_n - Sigma_full
         predicted, _ = stability(z[:, off:], _chol(model, cov - cov_full), pool, k, assessor.eps)

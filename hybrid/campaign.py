@@ -134,13 +134,15 @@ def choose_askees(B, cov, sigma2, n_asks, eligible, weight, asks_left):
 
     Returns
     -------
-    users : list of int, gains : list of float (the information gain of each pick)
+    users : list of int
+    gains : list of float (the information gain of each pick)
+    cov : ndarray (d, d), the covariance after all picks
 
     Examples
     --------
     >>> B = np.array([[1.0, 2.0], [1.0, 0.1], [1.0, -2.0]])
     >>> left = np.array([1, 1, 1])
-    >>> users, _ = choose_askees(B, np.eye(2), 1.0, 2, np.ones(3, bool), np.ones(3), left)
+    >>> users, _, _ = choose_askees(B, np.eye(2), 1.0, 2, np.ones(3, bool), np.ones(3), left)
     >>> users, left.tolist()        # the two far-apart users: the second adds the most after the first
     ([0, 2], [0, 1, 0])
     """
@@ -160,7 +162,7 @@ def choose_askees(B, cov, sigma2, n_asks, eligible, weight, asks_left):
         denom = sigma2 + float(B[u] @ s)
         cov -= np.outer(s, s) / denom          # Sherman-Morrison on the precision update
         quad -= (B @ s) ** 2 / denom
-    return picks, gains
+    return picks, gains, cov
 
 
 def asks_table(rows) -> pd.DataFrame:

@@ -27,10 +27,6 @@ app = typer.Typer(add_completion=False, no_args_is_help=True, rich_markup_mode=N
                   help="Score new, unrated catalogue items from their attributes, and plan "
                        "how many ratings each needs. Scores are estimates.")
 
-CAUTION = ("Ratings are personal data. Contacting customers needs their consent, must respect "
-           "opt-outs and local data-protection law; every number here is an estimate.")
-
-
 def settings_of(model, config: Optional[Path]) -> dict:
     """The settings a command runs with: a given file, else those the model was trained with."""
     if config is not None:
@@ -174,6 +170,13 @@ def demo(folder: Path = typer.Argument(Path("demo-out"), help="Folder for the de
     """
     from .demo import run_demo
     run_demo(folder, seed=seed, say=say)
+
+
+from .cli_plan import calibrate_command, plan_command, update_command  # noqa: E402
+
+app.command("plan")(guarded(plan_command))
+app.command("update")(guarded(update_command))
+app.command("calibrate")(guarded(calibrate_command))
 
 
 @app.command()

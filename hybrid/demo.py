@@ -57,7 +57,32 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
         say(f"  {row.item} {lot['name']} ({lot['region']}, {lot['process']}, notes: {lot['notes']}): "
             f"expected {row.expected_rating:.2f}, {row.liked_share:.0%} of members likely to give "
             f"{cfg['score']['liked']:g}+; nearest existing lots {near}")
-    paths["_model"] = model
-    say(f"Files are in {folder}/ (ratings, lots, new lots, settings, model, scores). "
+    _campaign(model, new, cfg, folder, paths, say)
+    say(f"Files are in {folder}/ (ratings, lots, new lots, settings, model, scores, plan, asks). "
         f"Done in {time.perf_counter() - t0:.1f} s.")
     return paths
+
+
+def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):
+    """Plan a sampling campaign for the whole catalogue, new lots included."""
+    from .cli_plan import CAUTION, write_table
+    from .planner import plan
+
+    model.add_items(new)
+    p = plan(model, target=cfg["plan"]["target"], k=cfg["plan"]["k"], budget=budget, per_user=per_user,
+             priority="margin", seed=cfg["plan"]["seed"], draws=cfg["plan"]["draws"])
+    paths["plan"], paths["asks"] = folder / "plan.csv", folder / "asks.csv"
+    write_table(p.items, paths["plan"])
+    write_table(p.asks, paths["asks"])
+    s = p.summary()
+    items = p.items
+    say(f"Planner (top-{cfg['plan']['k']} neighbour lists, target stability {cfg['plan']['target']:g}): "
+        f"{s['trusted']} lots trusted, {s['under-covered']} under-covered, {s['no ratings yet']} with no ratings yet.")
+    reach = items[items["needed"].notna() & (items["needed"] > 0)]
+    if len(reach):
+        say(f"  Of the lots not yet trusted, {len(reach)} can get there within {cfg['plan']['max_needed']} more "
+            f"ratings (median {int(reach['needed'].median())}); the rest need more than that.")
+    say(f"  A {budget}-rating campaign weighted by margin, at most {per_user} asks per member, would bring "
+        f"{s['items reaching target with the plan'] - s['trusted']} more lots to the target "
+        f"({s['asks']} asks to {p.asks['user'].nunique()} members).")
+    say(f"  {CAUTION}")

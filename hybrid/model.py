@@ -10,7 +10,7 @@ import scipy.sparse as sp
 from .data import check_items_described, validate_attributes, validate_ratings
 from .errors import InputError
 from .features import AttributeEncoder
-from .train import Factors, RatingData, fit_factors, item_step, user_step
+from .train import Factors, RatingData, fit_factors, item_step, objective, user_step
 
 _PARAMS = ("rank", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
            "map_weighting", "holdout", "biases", "n_jobs", "text_max_features", "text_min_df",
@@ -152,22 +152,27 @@ class HybridFactorModel:
             validate = lambda F: float(np.sqrt(np.mean((rv - self._predict_codes(F, data.mu, uv, iv)) ** 2)))
         weight = self._prior_weight(data)
         auto = self.lam_map == "auto"
-        F, sigma2 = fit_factors(data, self.attributes_, rank=self.rank, lam_user=self.lam_user,
+        F, sigma2, sigma2_new = fit_factors(data, self.attributes_, rank=self.rank, lam_user=self.lam_user,
                                 lam_item=self.lam_item, lam_map=1.0 if auto else float(self.lam_map),
                                 tune_map=auto and self.prior == "learned", epochs=self.epochs,
                                 tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
                                 biases=self.biases, n_jobs=self.n_jobs, validate=validate,
                                 on_epoch=on_epoch)
-        self._set_factors(F, data.mu, sigma2, weight)
+        self._set_factors(F, data.mu, sigma2, weight, sigma2_new)
         self.lam_map_ = float(F.lam_map)
-        last = F.history[-1]
+        last = dict(F.history[-1])
+        # the final state (after the learned prior and the last item step) is what is reported
+        last["objective"], sse = objective(data, F, self.attributes_, self.lam_user, self.lam_map_, weight)
+        last["train_rmse"] = float(np.sqrt(sse / data.nnz))
+        last["valid_rmse"] = validate(F) if validate else float("nan")
         self.metrics_ = {"n_users": len(self.user_ids_), "n_items": len(self.item_ids_),
                          "n_rated_items": int((self.item_counts_ > 0).sum()), "n_ratings": int(train.size),
                          "n_holdout": int(valid.size), "n_features": int(self.attributes_.shape[1]),
                          "epochs_run": len(F.history), "objective": last["objective"],
                          "train_rmse": last["train_rmse"],
                          "valid_rmse": last["valid_rmse"] if valid.size else None,
-                         "sigma2": self.sigma2_, "lam_map": self.lam_map_,
+                         "sigma2": self.sigma2_, "sigma2_new": self.sigma2_new_, "lam_map": self.lam_map_,
+                         "variance_scales": list(F.scales),
                          "seconds": time.perf_counter() - t0}
         return self
 
@@ -196,14 +201,21 @@ class HybridFactorModel:
         # poorly rated items pull the map less, and no weight is zero
         return np.maximum(counts / (counts + self.lam_item), 0.05)
 
-    def _set_factors(self, F: Factors, mu, sigma2, weight):
+    def _set_factors(self, F: Factors, mu, sigma2, weight, sigma2_new=None):
         self.factors_ = F
         self.mu_ = float(mu)
         self.sigma2_ = float(sigma2)
+        self.sigma2_new_ = float(sigma2 if sigma2_new is None else sigma2_new)
         self.prior_weight_ = weight
         self.history_ = list(F.history)
         self.item_counts_ = np.bincount(self.ratings_[1], minlength=len(self.item_ids_))
         self.user_counts_ = np.bincount(self.ratings_[0], minlength=len(self.user_ids_))
+        self.rating_range_ = (float(np.min(self.ratings_[2])), float(np.max(self.ratings_[2])))
+
+    def clip(self, scores):
+        """Scores limited to the range of ratings seen in training (for display and
+        expected ratings; the raw scores keep their linear structure)."""
+        return np.clip(scores, *self.rating_range_)
 
     # ------------------------------------------------------------- access
     def _fitted(self):
@@ -228,8 +240,20 @@ class HybridFactorModel:
 
     @property
     def prior_precision_(self):
-        """Item prior precision ``P`` (block x block); covariance is ``sigma2_ * P^-1``."""
+        """Item prior precision ``P`` of the fit (block x block); the prior covariance is
+        :attr:`prior_covariance_` = ``sigma2_ * P^-1``."""
         return self._fitted().P
+
+    @property
+    def prior_covariance_(self):
+        """How far an item's block falls from its attribute projection (covariance)."""
+        return self.sigma2_ * np.linalg.inv(self._fitted().P)
+
+    @property
+    def new_rating_precision_(self):
+        """The prior precision on the scale of a new rating, ``sigma2_new_ * Psi^-1``:
+        what an item solved from ratings its raters were not fitted to uses."""
+        return self.sigma2_new_ * np.linalg.inv(self.prior_covariance_)
 
     def _blocks_for_items(self, items, attributes=None):
         """Blocks of known items, projections of the others (from ``attributes``)."""
@@ -366,16 +390,30 @@ class HybridFactorModel:
             return
         if attributes is None or not np.isin(new, attributes.index.astype(str)).all():
             raise InputError(f"item '{new[0]}' is not in the model; give its attribute row to fold it in")
-        rows = attributes.loc[new]
-        A_new = self.features_.transform(rows)
-        F = self.factors_
+        self.add_items(attributes.loc[new])
+
+    def add_items(self, attributes: pd.DataFrame):
+        """Add items with no ratings (their blocks are their projections); known ids are skipped.
+
+        Returns
+        -------
+        self
+        """
+        F = self._fitted()
+        attributes = attributes[~attributes.index.astype(str).isin(self.item_ids_)]
+        if not len(attributes):
+            return self
+        new = attributes.index.to_numpy(dtype=str)
+        A_new = self.features_.transform(attributes)
         F.item = np.vstack([F.item, np.asarray(A_new @ F.W)])
         self.attributes_ = sp.vstack([self.attributes_, A_new], format="csr")
-        if getattr(self, "item_table_", None) is not None:
-            extra = rows.astype(str).reindex(columns=self.item_table_.columns, fill_value="")
-            self.item_table_ = pd.concat([self.item_table_, extra.set_axis(pd.Index(new, name="item"), axis=0)])
         self.item_ids_ = np.concatenate([self.item_ids_, new])
-        self.prior_weight_ = np.concatenate([self.prior_weight_, np.ones(len(new))])
+        self.prior_weight_ = np.concatenate([self.prior_weight_, self._weight_for_counts(np.zeros(len(new)))])
+        self.item_counts_ = np.concatenate([self.item_counts_, np.zeros(len(new), dtype=self.item_counts_.dtype)])
+        if getattr(self, "item_table_", None) is not None:
+            extra = attributes.astype(str).reindex(columns=self.item_table_.columns, fill_value="")
+            self.item_table_ = pd.concat([self.item_table_, extra.set_axis(pd.Index(new, name="item"), axis=0)])
+        return self
 
     def _add_users(self, ratings):
         new = np.setdiff1d(ratings["user"].unique().astype(str), self.user_ids_)

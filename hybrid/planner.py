@@ -83,7 +83,7 @@ class Assessor:
         self.weight = model.prior_weight_
         self.grams = item_grams(model)
         self.cov_now = covariances(model, self.grams, self.weight)
-        prior_cov = model.sigma2_ * np.linalg.inv(model.prior_precision_)
+        prior_cov = model.prior_covariance_
         prior_var = np.trace(vector_part(model, prior_cov[None])[0])
         # relative variance: share of the prior's spread the ratings have not yet removed
         rel = np.einsum("bii->b", vector_part(model, self.cov_now)) * self.weight / prior_var
@@ -275,9 +275,10 @@ def _asks(model, A: Assessor, planned, weights, per_user):
     for i in order:
         eligible = np.ones(len(B), bool)
         eligible[R.indices[R.indptr[i]:R.indptr[i + 1]]] = False
-        users, gains = choose_askees(B, A.cov_now[i], model.sigma2_, int(planned[i]), eligible, weight, left)
+        users, gains, _ = choose_askees(B, A.cov_now[i], model.sigma2_new_, int(planned[i]), eligible, weight, left)
         if users:
-            expected = model._combine(model.user_blocks_[users], np.repeat(model.item_blocks_[[i]], len(users), 0))
+            expected = model.clip(model._combine(model.user_blocks_[users],
+                                                 np.repeat(model.item_blocks_[[i]], len(users), 0)))
             rows += [(model.item_ids_[i], model.user_ids_[u], r + 1, g, e)
                      for r, (u, g, e) in enumerate(zip(users, gains, expected))]
     return asks_table(rows)

@@ -5,10 +5,12 @@ Gaussian posterior of Bayesian linear regression (Bishop, Pattern
 Recognition and Machine Learning, 2006, section 3.3):
 
     mean = the trainer's item solution,
-    Sigma_i = sigma^2 (B_i^T B_i + c_i P)^-1,
+    Sigma_i = (B_i^T B_i / sigma^2 + c_i Psi^-1)^-1 = sigma^2 (B_i^T B_i + c_i P)^-1,
 
-``B_i`` the rows ``[1, theta_u]`` of the item's raters and ``P`` the prior
-precision the trainer used (learned by EM, or ``lam_item * I``).  The
+``B_i`` the rows ``[1, theta_u]`` of the item's raters, ``Psi`` the prior
+covariance (learned, or ``sigma^2 / lam_item * I``) and ``P`` the prior
+precision the trainer used.  Ratings still to come count with the variance
+of a new rating (:func:`covariances`).  The
 *stability* of an item is the expected overlap of its top-k neighbour list
 with the list it would have once its vector is known: the share of the
 current list that a draw from the posterior keeps in its own top k.
@@ -34,11 +36,17 @@ def item_grams(model, rows=None):
 
 
 def covariances(model, grams, weight, extra=None):
-    """Posterior covariances ``sigma^2 (G + extra + c P)^-1`` of a block of items."""
-    prec = grams + weight[:, None, None] * model.prior_precision_
+    """Posterior covariances of a block of items.
+
+    ``(G / sigma^2 + extra / sigma_new^2 + c Psi^-1)^-1``: the ratings the model
+    was fitted to count with the fit's noise, ``extra`` (the expected ``B^T B``
+    of ratings still to come) with the noise of a new rating, ``Psi`` being
+    the prior covariance.
+    """
+    prec = grams / model.sigma2_ + weight[:, None, None] * np.linalg.inv(model.prior_covariance_)
     if extra is not None:
-        prec = prec + extra
-    return model.sigma2_ * np.linalg.inv(prec)
+        prec = prec + extra / model.sigma2_new_
+    return np.linalg.inv(prec)
 
 
 def vector_part(model, cov):

@@ -137,8 +137,9 @@ def learn_prior(data, F, A, weight, sigma2, lam_user, lam_map, seed, n_jobs=1, r
     The well-rated items are split into ``folds``; each fold is held out in
     turn.  With ``tune_map`` the map penalty is also chosen on the held-out
     items; with ``recalibrate`` the prior and noise scales are checked on them
-    too (:mod:`hybrid.recalibrate`).  Returns ``(P, lam_map, sigma2,
-    (kappa_prior, kappa_noise))`` with ``sigma2`` the recalibrated noise variance.
+    too (:mod:`hybrid.recalibrate`).  Returns ``(Psi, lam_map, sigma2_new,
+    (kappa_prior, kappa_noise))``: the prior covariance and the variance of a
+    new rating, both recalibrated.
     """
     counts = np.diff(data.by_item.indptr)
     held = held_out_set(counts, seed, fraction=1.0, most=400 * folds)
@@ -165,4 +166,4 @@ def learn_prior(data, F, A, weight, sigma2, lam_user, lam_map, seed, n_jobs=1, r
         from .recalibrate import variance_scales
         scales = variance_scales(parts, Psi, sigma2, 1 if F.biases else 0, seed=seed)
     kp, kn = scales
-    return kn * sigma2 * np.linalg.inv(kp * Psi), lam_map, kn * sigma2, scales
+    return kp * Psi, lam_map, kn * sigma2, scales

@@ -83,7 +83,8 @@ def _lot_table(rng, ids, months, rank, embed):
 
 
 def tasting_club(n_members: int = 3000, n_lots: int = 600, n_new: int = 40, rank: int = 5,
-                 mean_ratings_per_member: float = 12.0, seed: int = 7) -> TastingClub:
+                 mean_ratings_per_member: float = 12.0, rating_noise: float = 0.55,
+                 seed: int = 7) -> TastingClub:
     """Generate the tasting club; same arguments and seed give identical tables.
 
     Examples
@@ -114,7 +115,7 @@ def tasting_club(n_members: int = 3000, n_lots: int = 600, n_new: int = 40, rank
     i = rng.choice(n_lots, n_draw, p=popularity / popularity.sum())
     key = np.unique(u.astype(np.int64) * n_lots + i)
     u, i = key // n_lots, key % n_lots
-    raw = 3.55 + b_user[u] + b_item[i] + np.einsum("nk,nk->n", theta[u], x[i]) + rng.normal(0, 0.55, len(u))
+    raw = 3.55 + b_user[u] + b_item[i] + np.einsum("nk,nk->n", theta[u], x[i]) + rng.normal(0, rating_noise, len(u))
     score = np.clip(np.round(raw * 2) / 2, 1.0, 5.0)
     order = rng.permutation(len(u))
     ratings = pd.DataFrame({"user": members[u[order]], "item": ids[i[order]], "rating": score[order]})

@@ -22,7 +22,8 @@ def score_items(model, attributes: pd.DataFrame, *, liked: float = 4.0, audience
     """Yield one DataFrame per chunk of items, one row per item.
 
     Columns: ``item``, ``content_only`` (no ratings behind its vector),
-    ``bias`` (projected), ``expected_rating`` (mean over all users),
+    ``bias`` (projected), ``expected_rating`` (mean over all users of the
+    scores limited to the training ratings' range),
     ``liked_share`` (share of users expected at or above ``liked``),
     ``audience`` (list of (user, expected rating), best first) and
     ``nearest`` (list of (item, distance)) among the model's rated items.
@@ -49,7 +50,7 @@ def score_items(model, attributes: pd.DataFrame, *, liked: float = 4.0, audience
         ids = part.index.to_numpy(dtype=str)
         z = model._blocks_for_items(ids, part)
         counts = np.where(known[s:s + chunk] >= 0, model.item_counts_[np.maximum(known[s:s + chunk], 0)], 0)
-        block = next(model.score_blocks(z, chunk=len(z)))[1]
+        block = model.clip(next(model.score_blocks(z, chunk=len(z)))[1])
         top = np.argpartition(-block, n_aud - 1, axis=1)[:, :n_aud] if n_aud else np.zeros((len(z), 0), int)
         top_scores = np.take_along_axis(block, top, 1)
         order = np.argsort(-top_scores, axis=1, kind="stable")

@@ -56,6 +56,7 @@ def save_model(model, path) -> None:
         "params": model.get_params(), "settings": getattr(model, "settings_", None),
         "features": model.features_.get_state(), "metrics": model.metrics_,
         "history": model.history_, "mu": model.mu_, "sigma2": model.sigma2_,
+        "sigma2_new": model.sigma2_new_,
         "biases": model.factors_.biases,
         "table_columns": [] if table is None else [str(c) for c in table.columns],
         "arrays": {k: {"sha256": _digest(v), "shape": list(v.shape), "dtype": str(v.dtype)}
@@ -137,7 +138,8 @@ def load_model(path):
                                       shape=tuple(a["attr_shape"]))
     F = Factors(a["user_blocks"], a["item_blocks"], a["map"], a["prior_precision"],
                 bool(manifest["biases"]), list(manifest["history"]))
-    model._set_factors(F, manifest["mu"], manifest["sigma2"], a["prior_weight"])
+    model._set_factors(F, manifest["mu"], manifest["sigma2"], a["prior_weight"], manifest["sigma2_new"])
+    model.lam_map_ = manifest["metrics"].get("lam_map")
     model.metrics_ = manifest["metrics"]
     model.extras_ = {k[len("extra_"):]: v for k, v in a.items() if k.startswith("extra_")}
     columns = manifest.get("table_columns", [])

