@@ -178,6 +178,11 @@ app.command("plan")(guarded(plan_command))
 app.command("update")(guarded(update_command))
 app.command("calibrate")(guarded(calibrate_command))
 
+from .cli_evaluate import evaluate_command, tune_command  # noqa: E402
+
+app.command("evaluate")(guarded(evaluate_command))
+app.command("tune")(guarded(tune_command))
+
 
 @app.command()
 def version():

@@ -13,7 +13,7 @@ from .features import AttributeEncoder
 from .train import Factors, RatingData, fit_factors, item_step, objective, user_step
 
 _PARAMS = ("rank", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
-           "map_weighting", "holdout", "biases", "n_jobs", "text_max_features", "text_min_df",
+           "map_weighting", "weight_half", "holdout", "biases", "n_jobs", "text_max_features", "text_min_df",
            "text_ngrams", "tag_separator")
 
 
@@ -43,8 +43,12 @@ class HybridFactorModel:
         ``'learned'`` re-estimates the item prior covariance by EM between
         epochs; ``'fixed'`` keeps ``lam_item * I``.
     map_weighting : {'none', 'precision'}
-        ``'precision'`` weights each item's prior term by how well its
-        ratings determine its block (see :func:`hybrid.train.fit_factors`).
+        ``'precision'`` weights each item's prior term, and so its pull on the
+        map, by ``n / (n + weight_half)`` for an item with ``n`` ratings: items
+        whose ratings barely determine them (often unlike the items a new one
+        will be compared with) pull the map less.
+    weight_half : float
+        The rating count at which an item weighs half, with ``'precision'``.
     holdout : float
         Fraction of ratings kept aside to report validation RMSE per epoch.
     biases : bool
@@ -64,7 +68,7 @@ class HybridFactorModel:
     """
 
     def __init__(self, rank=16, lam_user=5.0, lam_item=5.0, lam_map="auto", epochs=25, tol=1e-5,
-                 seed=0, schema=None, prior="learned", map_weighting="none", holdout=0.0,
+                 seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0, holdout=0.0,
                  biases=True, n_jobs=1, text_max_features=2000, text_min_df=2, text_ngrams=1,
                  tag_separator="|"):
         self.rank = rank
@@ -77,6 +81,7 @@ class HybridFactorModel:
         self.schema = schema
         self.prior = prior
         self.map_weighting = map_weighting
+        self.weight_half = weight_half
         self.holdout = holdout
         self.biases = biases
         self.n_jobs = n_jobs
@@ -196,10 +201,9 @@ class HybridFactorModel:
         counts = np.asarray(counts, float)
         if self.map_weighting == "none":
             return np.ones(len(counts))
-        # the share of an item's block its own ratings determine, n / (n + n0),
-        # with n0 = lam_item (one rating's worth of precision per unit of lam):
-        # poorly rated items pull the map less, and no weight is zero
-        return np.maximum(counts / (counts + self.lam_item), 0.05)
+        # poorly rated items pull the map less (they are a selected, unlike set:
+        # rarely rated products are rated lower), and no weight is zero
+        return np.maximum(counts / (counts + self.weight_half), 0.05)
 
     def _set_factors(self, F: Factors, mu, sigma2, weight, sigma2_new=None):
         self.factors_ = F

@@ -177,3 +177,51 @@ def test_output_folder_missing(files, tmp_path):
 def test_unknown_item_and_bad_format(files):
     one_line_error(run("related", files["model"], "NOPE"), "item 'NOPE' is not in the model")
     one_line_error(run("inspect", files["model"], "--format", "xml"), "--format must be one of")
+
+
+# ---- the campaign analyst's commands --------------------------------------------------
+
+def test_plan_writes_plan_and_asks(files, tmp_path):
+    out, asks = tmp_path / "plan.csv", tmp_path / "asks.jsonl"
+    result = run("plan", files["model"], "--budget", "60", "--per-user", "2", "--k", "5", "--priority", "margin",
+                 "--new-items", files["new_lots"], "--out", out, "--asks", asks, "--format", "json")
+    assert result.exit_code == 0, result.output
+    summary = json.loads(result.stdout)
+    table = pd.read_csv(out)
+    assert len(table) == 80 + 6 and summary["asks"] == sum(1 for _ in asks.open())
+    assert summary["no ratings yet"] == (table["ratings"] == 0).sum()
+    assert table["planned"].sum() <= 60 and summary["ratings planned"] == table["planned"].sum()
+    lines = [json.loads(x) for x in asks.read_text().splitlines()]
+    assert pd.DataFrame(lines).groupby("user").size().max() <= 2
+
+
+def test_plan_help_carries_the_cautions():
+    text = run("plan", "--help").stdout
+    for phrase in ("personal data", "opt-outs", "data-protection law", "estimate"):
+        assert phrase in text
+
+
+def test_update_folds_in_and_plan_shows_what_is_left(files, tmp_path):
+    model2 = tmp_path / "m2.hybrid"
+    new = tmp_path / "week1.csv"
+    pd.DataFrame({"member": ["M00001", "M00002", "M00003"], "lot": ["L0003", "L0003", "L0004"],
+                  "score": [4.5, 4.0, 2.0]}).to_csv(new, index=False)
+    result = run("update", files["model"], new, "--out", model2, "--format", "json")
+    assert result.exit_code == 0, result.output
+    before, after = hybrid.load(files["model"]), hybrid.load(model2)
+    j = list(after.item_ids_).index("L0003")
+    assert after.item_counts_[j] >= before.item_counts_[j] + 1
+    assert json.loads(result.stdout)["items touched"] == 2
+    bad = tmp_path / "bad.csv"
+    pd.DataFrame({"member": ["M00001"], "lot": ["NEW"], "score": [4.0]}).to_csv(bad, index=False)
+    one_line_error(run("update", files["model"], bad, "--out", tmp_path / "m3.hybrid"),
+                   "item 'NEW' is not in the model")
+    assert not (tmp_path / "m3.hybrid").exists()
+
+
+def test_calibrate_prints_the_table(files):
+    result = run("calibrate", files["ratings"], files["lots"], "--config", files["config"], "--probes", "10",
+                 "--format", "csv")
+    assert result.exit_code == 0, result.output
+    table = pd.read_csv(pd.io.common.StringIO(result.stdout))
+    assert table["n"].tolist() == [0, 2, 5, 10, 20, 40] and (table["items"] <= 10).all()
