@@ -20,8 +20,10 @@ from __future__ import annotations
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
-_BUDGET = 1 << 22  # floats in one padded gather (32 MB): bounds memory per group
+_BUDGET = 1 << 21  # floats in one padded gather: bounds memory per group, and keeps
+                   # groups small enough to share out between threads
 
 
 def design(factors: np.ndarray, bias: np.ndarray | None) -> np.ndarray:
@@ -91,16 +93,21 @@ def row_grams(indptr, indices, values, F_ext, y_offset, rows=None):
 def _solve_group(g, indptr, indices, values, F_ext, y_offset, P, prior_mean, weight, with_edf):
     T, y = gather(indptr, indices, values, g, F_ext, y_offset)
     Tt = T.transpose(0, 2, 1)
-    A = Tt @ T + weight[g, None, None] * P
-    b = (Tt @ y[..., None])[..., 0]
+    # the products may run in single precision (F_ext's dtype); the solve is always double
+    A = (Tt @ T).astype(np.float64) + weight[g, None, None] * P
+    b = (Tt @ y.astype(T.dtype)[..., None])[..., 0].astype(np.float64)
     if prior_mean is not None:
         b = b + weight[g, None] * (prior_mean[g] @ P)
     if not with_edf:
-        return g, np.linalg.solve(A, b[..., None])[..., 0], np.zeros(len(g))
-    # one factorisation for both: the solution and trace(F^T F (F^T F + wP)^-1),
-    # the effective degrees of freedom of each ridge fit
-    sol = np.linalg.solve(A, np.concatenate([b[..., None], A - weight[g, None, None] * P], axis=2))
-    return g, sol[..., 0], np.einsum("gii->g", sol[..., 1:])
+        z, edf = np.linalg.solve(A, b[..., None])[..., 0], np.zeros(len(g))
+    else:
+        # one factorisation for both: the solution and trace(F^T F (F^T F + wP)^-1),
+        # the effective degrees of freedom of each ridge fit
+        sol = np.linalg.solve(A, np.concatenate([b[..., None], A - weight[g, None, None] * P], axis=2))
+        z, edf = sol[..., 0], np.einsum("gii->g", sol[..., 1:])
+    # the data term of the objective comes for free here (padding rows are zero)
+    e = y - (T @ z.astype(T.dtype)[..., None])[..., 0]
+    return g, z, edf, float(np.sum(e.astype(np.float64) ** 2))
 
 
 def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, weight=None,
@@ -124,6 +131,8 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
         Per-row multiplier of the prior term; ones when absent.
     n_jobs : int
         Threads over groups of rows (BLAS and LAPACK release the GIL).
+        ``F_ext`` in float32 makes the Gram products single precision
+        (twice as fast; the solve stays in double precision).
     with_edf : bool
         Also sum the effective degrees of freedom (costs a wider solve).
 
@@ -133,13 +142,15 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
         Unrated rows get their prior mean.
     edf : ndarray (n_rows,)
         Each row's effective degrees of freedom (zeros unless asked).
+    sse : float
+        Sum of squared residuals of all the block's ratings at the new solution.
 
     Examples
     --------
     >>> import scipy.sparse as sp
     >>> R = sp.csr_matrix(np.array([[2.0, 2.0]]))
     >>> F = design(np.zeros((2, 0)), np.zeros(2))     # bias only
-    >>> z, _ = solve_rows(R.indptr, R.indices, R.data, F, np.zeros(2), np.eye(1))
+    >>> z, _, _ = solve_rows(R.indptr, R.indices, R.data, F, np.zeros(2), np.eye(1))
     >>> round(float(z[0, 0]), 6)                      # 4 / (2 + 1)
     1.333333
     """
@@ -151,12 +162,15 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
     jobs = list(groups(counts, d))
     args = (indptr, indices, values, F_ext, y_offset, P, prior_mean, weight, with_edf)
     if n_jobs > 1 and len(jobs) > 1:
-        with ThreadPoolExecutor(n_jobs) as pool:
+        # our threads share out the groups; BLAS threads inside them would only contend
+        with threadpool_limits(1), ThreadPoolExecutor(n_jobs) as pool:
             results = list(pool.map(lambda g: _solve_group(g, *args), jobs))
     else:
         results = [_solve_group(g, *args) for g in jobs]
     edf = np.zeros(n)
-    for g, zg, eg in results:
+    sse = 0.0
+    for g, zg, eg, sg in results:
         z[g] = zg
         edf[g] = eg
-    return z, edf
+        sse += sg
+    return z, edf, sse

@@ -69,8 +69,10 @@ def train(ratings: Path = typer.Argument(..., help="Ratings table (CSV or Parque
 
 def _summary(model) -> dict:
     m = model.metrics_
-    return {"users": m["n_users"], "items": m["n_items"], "rated items": m["n_rated_items"],
-            "ratings": m["n_ratings"], "held out": m["n_holdout"], "features": m["n_features"],
+    # counts from the model as it is now (items may have been added, ratings folded in)
+    return {"users": len(model.user_ids_), "items": len(model.item_ids_),
+            "rated items": int((model.item_counts_ > 0).sum()), "ratings": int(model.item_counts_.sum()),
+            "held out": m["n_holdout"], "features": m["n_features"],
             "rank": model.rank, "epochs run": m["epochs_run"], "objective": round(m["objective"], 3),
             "train RMSE": round(m["train_rmse"], 4),
             "validation RMSE": None if m["valid_rmse"] is None else round(m["valid_rmse"], 4),
@@ -126,6 +128,8 @@ def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
             item: str = typer.Argument(..., help="Item id."),
             k: int = typer.Option(5, "--k", help="How many neighbours."),
             metric: str = typer.Option("euclidean", "--metric", help="euclidean or cosine."),
+            new_items: Optional[Path] = typer.Option(None, "--new-items",
+                                                     help="Attribute table describing ITEM if the model lacks it."),
             format: str = typer.Option("table", "--format", help="table, csv or json.")):
     """Nearest items by distance between item vectors (rated and projected alike).
 
@@ -133,9 +137,14 @@ def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
     """
     check_format(format)
     model = load_model(model_file)
-    if item not in set(model.item_ids_):
-        raise InputError(f"item '{item}' is not in the model")
-    emit(model.related([item], k=k, metric=metric), format, f"items nearest to {item} ({metric})")
+    attrs = None
+    if new_items is not None:
+        cfg = settings_of(model, None)
+        attrs = read_attributes(new_items, cfg, model.features_._spec(), require_all=False)
+    if item not in set(model.item_ids_) and (attrs is None or item not in set(attrs.index)):
+        raise InputError(f"item '{item}' is not in the model" + ("" if attrs is not None else
+                                                                  "; describe it with --new-items FILE"))
+    emit(model.related([item], k=k, metric=metric, attributes=attrs), format, f"items nearest to {item} ({metric})")
 
 
 @app.command()

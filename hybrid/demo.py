@@ -36,6 +36,8 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
         f"{int((counts < 5).sum())} have fewer than 5, {len(club.lots) - len(counts)} have none.")
 
     model = train_model(paths["ratings"], paths["lots"], cfg, quiet=True)
+    new = read_attributes(paths["new_lots"], cfg, model.features_._spec(), require_all=False)
+    model.add_items(new)   # the new lots join the catalogue with projected vectors
     paths["model"] = folder / "club.hybrid"
     model.save(paths["model"])
     m = model.metrics_
@@ -43,7 +45,6 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
     say(f"Trained a rank-{model.rank} model in {m['seconds']:.1f} s: validation RMSE "
         f"{m['valid_rmse']:.3f} on held-out ratings (the ratings' own spread is {spread:.3f}).")
 
-    new = read_attributes(paths["new_lots"], cfg, model.features_._spec(), require_all=False)
     scored = pd.concat(list(score_items(model, new, liked=cfg["score"]["liked"],
                                         audience=cfg["score"]["audience"],
                                         neighbours=cfg["score"]["neighbours"])))
@@ -68,7 +69,6 @@ def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):
     from .cli_plan import CAUTION, write_table
     from .planner import plan
 
-    model.add_items(new)
     p = plan(model, target=cfg["plan"]["target"], k=cfg["plan"]["k"], budget=budget, per_user=per_user,
              priority="margin", seed=cfg["plan"]["seed"], draws=cfg["plan"]["draws"])
     paths["plan"], paths["asks"] = folder / "plan.csv", folder / "asks.csv"

@@ -434,10 +434,11 @@ class HybridFactorModel:
         self.user_ids_ = ids[order]
 
     # --------------------------------------------------------------- misc
-    def related(self, items, k: int = 5, metric: str = "euclidean", among=None) -> pd.DataFrame:
+    def related(self, items, k: int = 5, metric: str = "euclidean", among=None,
+                attributes: pd.DataFrame | None = None) -> pd.DataFrame:
         """Nearest items by distance between item vectors; see :func:`hybrid.related.related`."""
         from .related import related
-        return related(self, items, k=k, metric=metric, among=among)
+        return related(self, items, k=k, metric=metric, among=among, attributes=attributes)
 
     def save(self, path) -> None:
         """Write the model file (JSON manifest + arrays, no pickle)."""

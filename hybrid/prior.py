@@ -50,7 +50,7 @@ def predictive_sigma2(data, F, lam_user, sigma2, members):
     for g in groups(np.diff(R.indptr), d):
         T, _ = gather(R.indptr, R.indices, R.data, g, Fe, offset)
         H = np.linalg.inv(T.transpose(0, 2, 1) @ T + lam_user * np.eye(d))
-        h = np.einsum("gld,gde,gle->gl", T, H, T)
+        h = np.sum((T @ H.astype(T.dtype)) * T, axis=2)
         lens = R.indptr[g + 1] - R.indptr[g]
         pos = np.minimum(R.indptr[g][:, None] + np.arange(T.shape[1])[None, :], R.nnz - 1)
         keep = (np.arange(T.shape[1])[None, :] < lens[:, None]) & members[R.indices[pos]]

@@ -64,6 +64,7 @@ class Factors:
     history: list = field(default_factory=list)
     lam_map: float | None = None
     scales: tuple = (1.0, 1.0)
+    sse: float | None = None
 
     def split(self, z):
         """(bias, vectors) of a block; bias is ``None`` without biases."""
@@ -89,9 +90,13 @@ def residuals(data: RatingData, F: Factors, rows=None):
         yield R.data[s:s + _CHUNK] - pred
 
 
-def objective(data, F, A, lam_user, lam_map, weight):
-    """The trainer's objective and the data term (sum of squared errors)."""
-    sse = float(sum(float(e @ e) for e in residuals(data, F)))
+def objective(data, F, A, lam_user, lam_map, weight, sse=None):
+    """The trainer's objective and the data term (sum of squared errors).
+
+    ``sse`` may be passed when known (the item step computes it for free).
+    """
+    if sse is None:
+        sse = float(sum(float(e @ e) for e in residuals(data, F)))
     D = F.item - A @ F.W
     prior = float(np.einsum("ij,jk,ik,i->", D, F.P, D, weight))
     total = sse + lam_user * float(np.sum(F.user ** 2)) + prior + lam_map * float(np.sum(F.W ** 2))
@@ -102,13 +107,23 @@ def _rows(R, rows):
     return R if rows is None else R[rows]
 
 
+_SINGLE_FROM = 250_000  # ratings from which the Gram products run in single precision
+
+
+def _design(factors, bias, nnz):
+    F = design(factors, bias)
+    # large problems: float32 products halve the memory traffic of the dominant cost;
+    # small ones (and the exactness tests) keep full double precision
+    return F.astype(np.float32) if nnz >= _SINGLE_FROM else F
+
+
 def user_step(data, F: Factors, lam_user, n_jobs=1, with_edf=False, rows=None):
     """Exact minimisation over every user's block (or ``rows`` only), items fixed."""
     ib, ix = F.split(F.item)
     R = _rows(data.by_user, rows)
     d = F.user.shape[1]
-    z, edf = solve_rows(R.indptr, R.indices, R.data, design(ix, ib), _offsets(F, F.item),
-                        lam_user * np.eye(d), None, None, n_jobs, with_edf)
+    z, edf, _ = solve_rows(R.indptr, R.indices, R.data, _design(ix, ib, data.nnz), _offsets(F, F.item),
+                           lam_user * np.eye(d), None, None, n_jobs, with_edf)
     F.user[slice(None) if rows is None else rows] = z
     return edf
 
@@ -118,9 +133,10 @@ def item_step(data, F: Factors, A, weight, n_jobs=1, with_edf=False, rows=None):
     ub, ut = F.split(F.user)
     R = _rows(data.by_item, rows)
     sel = slice(None) if rows is None else rows
-    z, edf = solve_rows(R.indptr, R.indices, R.data, design(ut, ub), _offsets(F, F.user),
-                        F.P, A[sel] @ F.W, weight[sel], n_jobs, with_edf)
+    z, edf, sse = solve_rows(R.indptr, R.indices, R.data, _design(ut, ub, data.nnz), _offsets(F, F.user),
+                             F.P, A[sel] @ F.W, weight[sel], n_jobs, with_edf)
     F.item[sel] = z
+    F.sse = sse  # the data term after this step (a map step leaves it unchanged)
     return edf
 
 
@@ -235,7 +251,7 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
         user_step(data, F, lam_user, n_jobs)
         item_step(data, F, A, weight, n_jobs)
         map_step(F, A, rated, solver)
-        total, sse = objective(data, F, A, lam_user, lam_map, weight)
+        total, sse = objective(data, F, A, lam_user, lam_map, weight, sse=F.sse)
         record = {"epoch": epoch, "objective": total, "train_rmse": float(np.sqrt(sse / data.nnz)),
                   "valid_rmse": float(validate(F)) if validate else float("nan"),
                   "seconds": time.perf_counter() - t0}
