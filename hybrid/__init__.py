@@ -8,7 +8,8 @@ Examples
 """
 from .errors import InputError
 from .model import HybridFactorModel
+from .planner import Plan, plan
 from .store import load_model as load
 
-__all__ = ["HybridFactorModel", "InputError", "load"]
+__all__ = ["HybridFactorModel", "InputError", "Plan", "load", "plan"]
 __version__ = "0.1.0"

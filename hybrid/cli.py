@@ -181,11 +181,12 @@ def demo(folder: Path = typer.Argument(Path("demo-out"), help="Folder for the de
     run_demo(folder, seed=seed, say=say)
 
 
-from .cli_plan import calibrate_command, plan_command, update_command  # noqa: E402
+from .cli_plan import calibrate_command, plan_command, report_command, update_command  # noqa: E402
 
 app.command("plan")(guarded(plan_command))
 app.command("update")(guarded(update_command))
 app.command("calibrate")(guarded(calibrate_command))
+app.command("report")(guarded(report_command))
 
 from .cli_evaluate import evaluate_command, tune_command  # noqa: E402
 

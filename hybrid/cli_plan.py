@@ -139,3 +139,53 @@ def calibrate_command(
     result = calibrate(table, attrs, params, n_probe=probes, k=cfg["plan"]["k"], draws=cfg["plan"]["draws"],
                        seed=seed)
     emit(result.round(4), format, "predicted against actual stability of probed items")
+
+
+def read_plan(path: Path) -> pd.DataFrame:
+    """A plan written by `hybrid plan` (CSV, JSON or JSON Lines)."""
+    if not path.is_file():
+        raise InputError("plan file not found", file=str(path))
+    suffix = path.suffix.lower()
+    try:
+        if suffix == ".json":
+            df = pd.read_json(path, orient="records", dtype={"item": str})
+        elif suffix in (".jsonl", ".ndjson"):
+            df = pd.read_json(path, orient="records", lines=True, dtype={"item": str})
+        else:
+            df = pd.read_csv(path, dtype={"item": str})
+    except ValueError as exc:
+        raise InputError(f"not a readable plan ({str(exc).splitlines()[0]})", file=str(path)) from None
+    missing = [c for c in ("item", "status", "ratings", "needed") if c not in df.columns]
+    if missing:
+        raise InputError(f"not a plan: missing column '{missing[0]}'", file=str(path), column=missing[0])
+    return df
+
+
+def report_command(
+        model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+        out: Path = typer.Option(..., "--out", help="HTML file to write."),
+        plan_file: Optional[Path] = typer.Option(None, "--plan", help="A plan from `hybrid plan` (else one is made)."),
+        by: Optional[str] = typer.Option(None, "--by", help="Attribute column to count statuses by."),
+        config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's).")):
+    """Write one self-contained HTML report with plots for the campaign meeting.
+
+    Example: hybrid report club.hybrid --plan plan.csv --out report.html
+    """
+    from .planner import plan
+    from .report import build_report
+
+    check_writable(out)
+    model = load_model(model_file)
+    cfg = _settings(model, config)
+    p = cfg["plan"]
+    items = read_plan(plan_file) if plan_file is not None else plan(
+        model, target=p["target"], k=p["k"], seed=p["seed"], draws=p["draws"]).items
+    unknown = set(items["item"].astype(str)) - set(model.item_ids_)
+    if unknown:
+        raise InputError(f"the plan lists item '{sorted(unknown)[0]}', which the model does not know",
+                         file=str(plan_file))
+    page = build_report(model, items, k=p["k"], target=p["target"], draws=p["draws"], seed=p["seed"], by=by,
+                        liked=cfg["score"]["liked"])
+    with atomic_path(out) as tmp:
+        tmp.write_text(page, encoding="utf-8")
+    say(f"report written to {out} ({len(page) / 1e6:.2f} MB)")

@@ -59,9 +59,19 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
             f"expected {row.expected_rating:.2f}, {row.liked_share:.0%} of members likely to give "
             f"{cfg['score']['liked']:g}+; nearest existing lots {near}")
     _campaign(model, new, cfg, folder, paths, say)
-    say(f"Files are in {folder}/ (ratings, lots, new lots, settings, model, scores, plan, asks). "
+    say(f"Files are in {folder}/ (ratings, lots, new lots, settings, model, scores, plan, asks, "
+        f"week1 answers to try `hybrid update`, report.html). "
         f"Done in {time.perf_counter() - t0:.1f} s.")
     return paths
+
+
+def _first_answers(asks, model, share=0.3, seed=0):
+    """Invented answers of a share of the asked members (for trying `hybrid update`)."""
+    rng = np.random.default_rng(seed)
+    picked = asks[rng.random(len(asks)) < share]
+    noise = rng.normal(0, 0.6, len(picked))
+    score = np.clip(np.round((picked["expected_rating"].to_numpy() + noise) * 2) / 2, 1.0, 5.0)
+    return pd.DataFrame({"member": picked["user"].to_numpy(), "lot": picked["item"].to_numpy(), "score": score})
 
 
 def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):
@@ -74,6 +84,14 @@ def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):
     paths["plan"], paths["asks"] = folder / "plan.csv", folder / "asks.csv"
     write_table(p.items, paths["plan"])
     write_table(p.asks, paths["asks"])
+    paths["week1"] = folder / "week1.csv"
+    write_table(_first_answers(p.asks, model), paths["week1"])
+    from .outputs import atomic_path
+    from .report import build_report
+    paths["report"] = folder / "report.html"
+    with atomic_path(paths["report"]) as tmp:
+        tmp.write_text(build_report(model, p.items, k=cfg["plan"]["k"], target=cfg["plan"]["target"],
+                                    liked=cfg["score"]["liked"]), encoding="utf-8")
     s = p.summary()
     items = p.items
     say(f"Planner (top-{cfg['plan']['k']} neighbour lists, target stability {cfg['plan']['target']:g}): "

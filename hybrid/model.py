@@ -202,8 +202,10 @@ class HybridFactorModel:
         if self.map_weighting == "none":
             return np.ones(len(counts))
         # poorly rated items pull the map less (they are a selected, unlike set:
-        # rarely rated products are rated lower), and no weight is zero
-        return np.maximum(counts / (counts + self.weight_half), 0.05)
+        # rarely rated products are rated lower), and no weight is zero.  An item
+        # with no ratings takes no part in the map fit, so its weight only sets its
+        # prior: it keeps the learned spread around its projection (weight 1)
+        return np.where(counts == 0, 1.0, np.maximum(counts / (counts + self.weight_half), 0.05))
 
     def _set_factors(self, F: Factors, mu, sigma2, weight, sigma2_new=None):
         self.factors_ = F

@@ -42,6 +42,10 @@ def atomic_path(path: str | Path):
     os.close(fd)
     try:
         yield Path(tmp)
+        # mkstemp makes the file private; give it the usual permissions (umask applies)
+        mask = os.umask(0)
+        os.umask(mask)
+        os.chmod(tmp, 0o666 & ~mask)
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):

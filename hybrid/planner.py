@@ -133,35 +133,40 @@ class Assessor:
         return mean, se
 
 
-def ratings_needed(assessor, items, now, target, max_needed, grid=GRID):
-    """Curves on the grid and the smallest number of extra ratings reaching ``target``.
+def ratings_needed(assessor, items, now, target, max_needed, grid=GRID, curves=True):
+    """The smallest number of extra ratings reaching ``target``, and stability curves.
 
-    Returns (curves (m, G), needed (m,) float with NaN for "more than max_needed").
+    Only items below the target are evaluated.  With ``curves`` the stability of
+    each is found on the whole grid (the budget's ``gain`` aim needs it);
+    without, only at ``max_needed``, and the answer is then found by bisection
+    (about log2(max_needed) evaluations instead of the grid's).
+    Returns (curves (m, G), needed (m,) float with NaN for "more than max_needed", grid).
     """
     grid = grid[grid <= max_needed]
-    curves = np.empty((len(items), len(grid)))
-    curves[:, 0] = now
+    if not curves:
+        grid = np.array([0, grid[-1]])
+    out = np.repeat(now[:, None], len(grid), axis=1)
+    open_ = np.flatnonzero(now < target)
     for j, n in enumerate(grid[1:], start=1):
-        live = curves[:, j - 1] < 0.999  # a settled curve stays settled
-        curves[~live, j] = curves[~live, j - 1]
-        if live.any():
-            curves[live, j] = assessor.at(items[live], n)[0]
+        live = open_[out[open_, j - 1] < 0.999]   # a settled curve stays settled
+        if live.size:
+            out[live, j] = assessor.at(items[live], n)[0]
     needed = np.full(len(items), np.nan)
     needed[now >= target] = 0
-    reach = curves >= target
+    reach = out >= target
     first = np.where(reach.any(1), reach.argmax(1), -1)
-    todo = np.flatnonzero((first > 0))
+    todo = np.flatnonzero(first > 0)
     lo, hi = grid[first[todo] - 1].astype(float), grid[first[todo]].astype(float)
     while todo.size and (hi - lo > 1).any():   # bisection, vectorised over items
         mid = np.floor((lo + hi) / 2)
-        open_ = hi - lo > 1
+        unsure = hi - lo > 1
         val = np.full(len(todo), -np.inf)
-        val[open_] = assessor.at(items[todo[open_]], mid[open_])[0]
+        val[unsure] = assessor.at(items[todo[unsure]], mid[unsure])[0]
         ok = val >= target
-        hi = np.where(open_ & ok, mid, hi)
-        lo = np.where(open_ & ~ok, mid, lo)
+        hi = np.where(unsure & ok, mid, hi)
+        lo = np.where(unsure & ~ok, mid, lo)
     needed[todo] = hi
-    return curves, needed, grid
+    return out, needed, grid
 
 
 def priority_weights(model, column):
@@ -233,7 +238,7 @@ def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, see
     A = Assessor(model, k, draws, seed, pool_min_ratings, responders, threshold)
     items = np.arange(len(model.item_ids_))
     now, se = A.at(items, 0.0)
-    curves, needed, grid = ratings_needed(A, items, now, target, max_needed)
+    curves, needed, grid = ratings_needed(A, items, now, target, max_needed, curves=(aim == "gain"))
     counts = model.item_counts_
     status = np.where(counts == 0, STATUS[0], np.where(now >= target, STATUS[2], STATUS[1]))
     weights = priority_weights(model, priority)

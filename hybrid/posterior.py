@@ -134,9 +134,11 @@ def _full_pool(X, pool, c2, listed, exclude, k):
     """Overlap for single draws against the whole pool, in bounded blocks."""
     out = np.empty(len(X))
     step = max(1, _BUDGET // len(pool))
+    # single precision for the big block: ranks only need the order of distances
+    pool32, c232 = pool.astype(np.float32), c2.astype(np.float32)
     for s in range(0, len(X), step):
-        x = X[s:s + step]
-        D = _sq(x)[:, None] + c2[None, :] - 2.0 * x @ pool.T
+        x = X[s:s + step].astype(np.float32)
+        D = _sq(x)[:, None] + c232[None, :] - 2.0 * x @ pool32.T
         ex = exclude[s:s + step]
         rows = np.flatnonzero(ex >= 0)
         D[rows, ex[rows]] = np.inf

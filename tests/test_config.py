@@ -36,3 +36,10 @@ def test_bad_values_are_named(tmp_path):
 def test_demo_settings_are_the_shipped_coffee_config():
     from hybrid.samples import DEMO_CONFIG
     assert DEMO_CONFIG.read_text() == (ROOT / "configs/coffee.toml").read_text()
+
+
+def test_catalog_samples_are_the_seeded_generator_output(tmp_path):
+    from hybrid.samples import write_samples
+    write_samples(tmp_path)
+    for name in ("ratings.csv", "lots.csv", "new_lots.csv"):
+        assert (tmp_path / name).read_bytes() == (ROOT / "catalog_samples" / name).read_bytes(), name

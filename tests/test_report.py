@@ -1,0 +1,91 @@
+"""The HTML report: parses, holds every section, figures have titles and alt text, numbers match."""
+import re
+import shutil
+import subprocess
+from html.parser import HTMLParser
+
+import numpy as np
+import pytest
+
+from hybrid import HybridFactorModel
+from hybrid.planner import plan
+from hybrid.report import build_report
+from hybrid.samples import tasting_club
+
+
+class Collect(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.tags, self.h2, self.svgs, self.titles, self.stack, self.text = [], [], [], [], [], []
+        self.external = []
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        self.tags.append(tag)
+        self.stack.append(tag)
+        if tag == "svg":
+            self.svgs.append(a)
+        if tag in ("script", "link", "img") and any(k in a for k in ("src", "href")):
+            self.external.append(a)
+
+    def handle_endtag(self, tag):
+        if self.stack and self.stack[-1] == tag:
+            self.stack.pop()
+
+    def handle_data(self, data):
+        if self.stack and self.stack[-1] == "h2":
+            self.h2.append(data.strip())
+        if self.stack and self.stack[-1] == "title" and "svg" in self.stack:
+            self.titles.append(data.strip())
+        self.text.append(data)
+
+
+@pytest.fixture(scope="module")
+def page():
+    club = tasting_club(n_members=1500, n_lots=300, n_new=20, seed=4)
+    m = HybridFactorModel(rank=4, epochs=12, schema=club.schema, text_min_df=1).fit(club.ratings, club.lots)
+    m.add_items(club.new_lots)
+    p = plan(m, budget=100, draws=32)
+    return build_report(m, p.items, draws=32), p
+
+
+def test_report_sections_figures_and_numbers(page):
+    text, p = page
+    c = Collect()
+    c.feed(text)
+    assert c.h2 == ["Coverage", "Ratings needed", "Map of items", "Training", "New items", "Cautions"]
+    assert len(c.svgs) == 5 and all(s.get("role") == "img" and len(s.get("aria-label", "")) > 40 for s in c.svgs)
+    assert len(c.titles) == 5 and all(c.titles)
+    assert not c.external and not re.search(r'(href|src)="(https?:)?//', text)   # nothing fetched
+    counts = p.items["status"].value_counts()
+    table = re.search(r'<table[^>]*status-counts.*?</table>', text, re.S).group(0)
+    for status, n in counts.items():
+        assert re.search(rf"<td>{status}</td>\s*<td>{n}</td>", table), status
+    assert f"{int((p.items['ratings'] == 0).sum())} items have no ratings yet" in text
+    assert "consent" in text or "agreed to be asked" in text
+    assert "estimate" in text
+
+
+def test_report_stays_small_for_5000_items():
+    club = tasting_club(n_members=3000, n_lots=5000, n_new=50, seed=2, mean_ratings_per_member=20)
+    m = HybridFactorModel(rank=4, epochs=5, schema=club.schema, text_min_df=1, prior="fixed").fit(
+        club.ratings, club.lots)
+    p = plan(m, draws=16)
+    text = build_report(m, p.items, draws=16)
+    assert len(text.encode()) < 2_000_000
+
+
+def test_report_renders_in_a_real_browser(page, tmp_path):
+    browser = shutil.which("chromium") or shutil.which("chromium-browser")
+    if browser is None:
+        pytest.skip("Debian's chromium is not installed here (.ci/run installs it where it can)")
+    html_path = tmp_path / "report.html"
+    html_path.write_text(page[0])
+    shot = tmp_path / "shot.png"
+    subprocess.run([browser, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+                    "--disable-component-update", "--disable-sync", "--no-first-run",
+                    f"--user-data-dir={tmp_path / 'profile'}", f"--screenshot={shot}", "--window-size=1200,2400",
+                    html_path.as_uri()], check=True, capture_output=True, timeout=120)
+    import matplotlib.image as mpimg
+    pixels = mpimg.imread(shot)
+    assert pixels.shape[0] > 100 and pixels[..., :3].std() > 0.05   # not a blank page
