@@ -15,7 +15,7 @@ import pandas as pd
 import typer
 
 from . import __version__
-from .config import load_config, model_params
+from .config import load_config, model_params, settings_for
 from .data import check_items_described, read_attributes, read_ratings
 from .display import EpochProgress, check_format, emit, emit_mapping, guarded, say
 from .errors import InputError
@@ -26,13 +26,6 @@ from .store import load_model
 app = typer.Typer(add_completion=False, no_args_is_help=True, rich_markup_mode=None,
                   help="Score new, unrated catalogue items from their attributes, and plan "
                        "how many ratings each needs. Scores are estimates.")
-
-def settings_of(model, config: Optional[Path]) -> dict:
-    """The settings a command runs with: a given file, else those the model was trained with."""
-    if config is not None:
-        return load_config(config)
-    return model.settings_ or load_config()
-
 
 def train_model(ratings: Path, attributes: Path, cfg: dict, quiet: bool = False) -> HybridFactorModel:
     """Read both tables, fit, and keep the settings in the model (shared by train and demo)."""
@@ -99,7 +92,7 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
     check_format(format)
     check_writable(out)
     model = load_model(model_file)
-    cfg = settings_of(model, config)
+    cfg = settings_for(model, config)
     attrs = read_attributes(new_items, cfg, model.features_._spec(), require_all=False)
     s = cfg["score"]
     chunks = score_items(model, attrs, liked=s["liked"] if liked is None else liked,
@@ -139,7 +132,7 @@ def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
     model = load_model(model_file)
     attrs = None
     if new_items is not None:
-        cfg = settings_of(model, None)
+        cfg = settings_for(model, None)
         attrs = read_attributes(new_items, cfg, model.features_._spec(), require_all=False)
     if item not in set(model.item_ids_) and (attrs is None or item not in set(attrs.index)):
         raise InputError(f"item '{item}' is not in the model" + ("" if attrs is not None else

@@ -8,7 +8,7 @@ from typing import Optional
 import pandas as pd
 import typer
 
-from .config import load_config, model_params
+from .config import load_config, model_params, settings_for
 from .data import read_attributes, read_ratings
 from .display import check_format, emit, emit_mapping, say
 from .errors import InputError
@@ -30,10 +30,6 @@ def write_table(df: pd.DataFrame, path: Path) -> None:
             df.to_json(tmp, orient="records", lines=True, double_precision=10)
         else:
             df.to_csv(tmp, index=False, float_format="%.6g")
-
-
-def _settings(model, config):
-    return load_config(config) if config is not None else (model.settings_ or load_config())
 
 
 def plan_command(
@@ -65,7 +61,7 @@ def plan_command(
         if path is not None:
             check_writable(path)
     model = load_model(model_file)
-    cfg = _settings(model, config)
+    cfg = settings_for(model, config)
     if new_items is not None:
         model.add_items(read_attributes(new_items, cfg, model.features_._spec(), require_all=False))
     p = cfg["plan"]
@@ -102,7 +98,7 @@ def update_command(
     check_format(format)
     check_writable(out)
     model = load_model(model_file)
-    cfg = _settings(model, config)
+    cfg = settings_for(model, config)
     table = read_ratings(new_ratings, cfg)
     attrs = None
     if new_items is not None:
@@ -176,7 +172,7 @@ def report_command(
 
     check_writable(out)
     model = load_model(model_file)
-    cfg = _settings(model, config)
+    cfg = settings_for(model, config)
     p = cfg["plan"]
     items = read_plan(plan_file) if plan_file is not None else plan(
         model, target=p["target"], k=p["k"], seed=p["seed"], draws=p["draws"]).items

@@ -134,6 +134,13 @@ def load_config(path: str | Path | None = None, overrides: dict | None = None) -
     return cfg
 
 
+def settings_for(model, config=None) -> dict:
+    """The settings a command runs with: a given file, else those the model was trained with."""
+    if config is not None:
+        return load_config(config)
+    return getattr(model, "settings_", None) or load_config()
+
+
 def column_schema(cfg: dict) -> dict[str, dict]:
     """Normalise ``[attributes.columns]`` to ``{name: {"type", "weight"}}``."""
     out = {}

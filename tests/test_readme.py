@@ -63,3 +63,14 @@ def test_every_readme_command_runs(tmp_path):
             known.update(getattr(param, "opts", []))
     for option in re.findall(r"`(--[a-z-]+)", README) + re.findall(r"\[(--[a-z-]+)", README):
         assert option in known, option
+
+
+def test_readme_library_example_runs(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    code = re.findall(r"```python\n(.*?)```", README, re.S)
+    assert code
+    scope = {}
+    exec(compile(code[0], "README.md", "exec"), scope)
+    assert scope["vectors"].shape == (40, 6) and scope["scores"].shape == (1,)
+    assert (scope["same"].item_blocks_ == scope["model"].item_blocks_).all()
+    assert set(scope["plan"].items["status"]) <= {"no ratings yet", "under-covered", "trusted"}
