@@ -6,11 +6,9 @@ stderr and exit code 2.
 """
 from __future__ import annotations
 
-import time
 from pathlib import Path
 from typing import Optional
 
-import numpy as np
 import pandas as pd
 import typer
 

@@ -1,7 +1,6 @@
 """Commands for the campaign analyst: plan, update, calibrate (registered in :mod:`hybrid.cli`)."""
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import Optional
 

@@ -5,12 +5,11 @@ import time
 
 import numpy as np
 import pandas as pd
-import scipy.sparse as sp
 
 from .data import check_items_described, validate_attributes, validate_ratings
 from .errors import InputError
 from .features import AttributeEncoder
-from .train import Factors, RatingData, fit_factors, item_step, objective, user_step
+from .train import Factors, RatingData, fit_factors, objective
 
 _PARAMS = ("rank", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
            "map_weighting", "weight_half", "holdout", "biases", "n_jobs", "text_max_features", "text_min_df",
@@ -316,7 +315,7 @@ class HybridFactorModel:
         return pred + (ub[u] + ib[i] if ub is not None else 0.0)
 
     def _combine(self, wu, zi):
-        F = self._fitted()
+        self._fitted()
         if not self.biases:
             return self.mu_ + np.einsum("nk,nk->n", wu, zi)
         return self.mu_ + wu[:, 0] + zi[:, 0] + np.einsum("nk,nk->n", wu[:, 1:], zi[:, 1:])
@@ -359,44 +358,15 @@ class HybridFactorModel:
     def fold_in(self, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None):
         """Add new ratings and re-solve only the users and items they touch.
 
-        Everything else (other users, other items, the map, the prior) stays
-        fixed, so this is fast and leaves the rest of the model unchanged.
-        New items need an attribute row; new users are added.
+        New items need an attribute row; new users are added.  See
+        :func:`hybrid.updates.fold_in`.
 
         Returns
         -------
         self
         """
-        F = self._fitted()
-        ratings = validate_ratings(ratings, {"user": "user", "item": "item", "rating": "rating"},
-                                   scale=(-np.inf, np.inf), duplicates="last", source="new ratings")
-        self._add_items(ratings, attributes)
-        self._add_users(ratings)
-        u = np.searchsorted(self.user_ids_, ratings["user"].to_numpy(dtype=str))
-        i = pd.Index(self.item_ids_).get_indexer(ratings["item"])
-        old_u, old_i, old_r = self.ratings_
-        keys_old = old_u.astype(np.int64) * len(self.item_ids_) + old_i
-        keep = ~np.isin(keys_old, u.astype(np.int64) * len(self.item_ids_) + i)
-        self.ratings_ = (np.concatenate([old_u[keep], u]).astype(np.int32),
-                         np.concatenate([old_i[keep], i]).astype(np.int32),
-                         np.concatenate([old_r[keep], ratings["rating"].to_numpy(float)]))
-        data = self._data()
-        touched_u, touched_i = np.unique(u), np.unique(i)
-        if self.map_weighting != "none":
-            self.prior_weight_[touched_i] = self._prior_weight(data)[touched_i]
-        user_step(data, F, self.lam_user, rows=touched_u)
-        item_step(data, F, self.attributes_, self.prior_weight_, rows=touched_i)
-        self.item_counts_ = np.bincount(self.ratings_[1], minlength=len(self.item_ids_))
-        self.user_counts_ = np.bincount(self.ratings_[0], minlength=len(self.user_ids_))
-        return self
-
-    def _add_items(self, ratings, attributes):
-        new = np.setdiff1d(ratings["item"].unique().astype(str), self.item_ids_)
-        if not new.size:
-            return
-        if attributes is None or not np.isin(new, attributes.index.astype(str)).all():
-            raise InputError(f"item '{new[0]}' is not in the model; give its attribute row to fold it in")
-        self.add_items(attributes.loc[new])
+        from .updates import fold_in
+        return fold_in(self, ratings, attributes)
 
     def add_items(self, attributes: pd.DataFrame):
         """Add items with no ratings (their blocks are their projections); known ids are skipped.
@@ -405,35 +375,8 @@ class HybridFactorModel:
         -------
         self
         """
-        F = self._fitted()
-        attributes = attributes[~attributes.index.astype(str).isin(self.item_ids_)]
-        if not len(attributes):
-            return self
-        new = attributes.index.to_numpy(dtype=str)
-        A_new = self.features_.transform(attributes)
-        F.item = np.vstack([F.item, np.asarray(A_new @ F.W)])
-        self.attributes_ = sp.vstack([self.attributes_, A_new], format="csr")
-        self.item_ids_ = np.concatenate([self.item_ids_, new])
-        self.prior_weight_ = np.concatenate([self.prior_weight_, self._weight_for_counts(np.zeros(len(new)))])
-        self.item_counts_ = np.concatenate([self.item_counts_, np.zeros(len(new), dtype=self.item_counts_.dtype)])
-        if getattr(self, "item_table_", None) is not None:
-            extra = attributes.astype(str).reindex(columns=self.item_table_.columns, fill_value="")
-            self.item_table_ = pd.concat([self.item_table_, extra.set_axis(pd.Index(new, name="item"), axis=0)])
-        return self
-
-    def _add_users(self, ratings):
-        new = np.setdiff1d(ratings["user"].unique().astype(str), self.user_ids_)
-        if not new.size:
-            return
-        F = self.factors_
-        ids = np.concatenate([self.user_ids_, new])
-        order = np.argsort(ids, kind="stable")
-        F.user = np.vstack([F.user, np.zeros((len(new), F.user.shape[1]))])[order]
-        remap = np.empty(len(ids), dtype=np.int64)
-        remap[order] = np.arange(len(ids))
-        u, i, r = self.ratings_
-        self.ratings_ = (remap[u].astype(np.int32), i, r)
-        self.user_ids_ = ids[order]
+        from .updates import add_items
+        return add_items(self, attributes)
 
     # --------------------------------------------------------------- misc
     def related(self, items, k: int = 5, metric: str = "euclidean", among=None,

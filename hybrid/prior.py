@@ -16,7 +16,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from .blocks import design, gather, groups, row_grams, solve_rows
+from .blocks import design, gather, groups, row_grams
 
 
 def well_rated(counts, min_ratings=20, least=50):

@@ -4,7 +4,6 @@ Items with 60 or more ratings are probed: trained without any of their
 ratings, solved with all of them (the full-data list) and with only n, and the
 planner's prediction at n compared with the actual overlap.
 """
-import numpy as np
 import pytest
 
 from hybrid.calibration import calibrate

@@ -4,7 +4,6 @@ import shutil
 import subprocess
 from html.parser import HTMLParser
 
-import numpy as np
 import pytest
 
 from hybrid import HybridFactorModel

@@ -1,0 +1,97 @@
+"""Changing a fitted model in place: fold new ratings in, add new items or users.
+
+Only what the new data touches is re-solved; everything else (other users,
+other items, the map, the prior) stays as it was.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import scipy.sparse as sp
+
+from .data import validate_ratings
+from .errors import InputError
+from .train import item_step, user_step
+
+
+def fold_in(model, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None):
+    """Add new ratings and re-solve only the users and items they touch.
+
+    Everything else (other users, other items, the map, the prior) stays
+    fixed, so this is fast and leaves the rest of the model unchanged.
+    New items need an attribute row; new users are added.
+
+    Returns
+    -------
+    model
+    """
+    F = model._fitted()
+    ratings = validate_ratings(ratings, {"user": "user", "item": "item", "rating": "rating"},
+                               scale=(-np.inf, np.inf), duplicates="last", source="new ratings")
+    _add_items(model, ratings, attributes)
+    _add_users(model, ratings)
+    u = np.searchsorted(model.user_ids_, ratings["user"].to_numpy(dtype=str))
+    i = pd.Index(model.item_ids_).get_indexer(ratings["item"])
+    old_u, old_i, old_r = model.ratings_
+    keys_old = old_u.astype(np.int64) * len(model.item_ids_) + old_i
+    keep = ~np.isin(keys_old, u.astype(np.int64) * len(model.item_ids_) + i)
+    model.ratings_ = (np.concatenate([old_u[keep], u]).astype(np.int32),
+                      np.concatenate([old_i[keep], i]).astype(np.int32),
+                      np.concatenate([old_r[keep], ratings["rating"].to_numpy(float)]))
+    data = model._data()
+    touched_u, touched_i = np.unique(u), np.unique(i)
+    if model.map_weighting != "none":
+        model.prior_weight_[touched_i] = model._prior_weight(data)[touched_i]
+    user_step(data, F, model.lam_user, rows=touched_u)
+    item_step(data, F, model.attributes_, model.prior_weight_, rows=touched_i)
+    model.item_counts_ = np.bincount(model.ratings_[1], minlength=len(model.item_ids_))
+    model.user_counts_ = np.bincount(model.ratings_[0], minlength=len(model.user_ids_))
+    return model
+
+
+def _add_items(model, ratings, attributes):
+    new = np.setdiff1d(ratings["item"].unique().astype(str), model.item_ids_)
+    if not new.size:
+        return
+    if attributes is None or not np.isin(new, attributes.index.astype(str)).all():
+        raise InputError(f"item '{new[0]}' is not in the model; give its attribute row to fold it in")
+    add_items(model, attributes.loc[new])
+
+
+def add_items(model, attributes: pd.DataFrame):
+    """Add items with no ratings (their blocks are their projections); known ids are skipped.
+
+    Returns
+    -------
+    model
+    """
+    F = model._fitted()
+    attributes = attributes[~attributes.index.astype(str).isin(model.item_ids_)]
+    if not len(attributes):
+        return model
+    new = attributes.index.to_numpy(dtype=str)
+    A_new = model.features_.transform(attributes)
+    F.item = np.vstack([F.item, np.asarray(A_new @ F.W)])
+    model.attributes_ = sp.vstack([model.attributes_, A_new], format="csr")
+    model.item_ids_ = np.concatenate([model.item_ids_, new])
+    model.prior_weight_ = np.concatenate([model.prior_weight_, model._weight_for_counts(np.zeros(len(new)))])
+    model.item_counts_ = np.concatenate([model.item_counts_, np.zeros(len(new), dtype=model.item_counts_.dtype)])
+    if getattr(model, "item_table_", None) is not None:
+        extra = attributes.astype(str).reindex(columns=model.item_table_.columns, fill_value="")
+        model.item_table_ = pd.concat([model.item_table_, extra.set_axis(pd.Index(new, name="item"), axis=0)])
+    return model
+
+
+def _add_users(model, ratings):
+    new = np.setdiff1d(ratings["user"].unique().astype(str), model.user_ids_)
+    if not new.size:
+        return
+    F = model.factors_
+    ids = np.concatenate([model.user_ids_, new])
+    order = np.argsort(ids, kind="stable")
+    F.user = np.vstack([F.user, np.zeros((len(new), F.user.shape[1]))])[order]
+    remap = np.empty(len(ids), dtype=np.int64)
+    remap[order] = np.arange(len(ids))
+    u, i, r = model.ratings_
+    model.ratings_ = (remap[u].astype(np.int32), i, r)
+    model.user_ids_ = ids[order]
