@@ -81,7 +81,7 @@ def _tuned(cls, C, train, protocol, seed, min_ratings):
     return cls(best).fit(C.u[train], C.i[train], C.r[train], C.A, len(C.users))
 
 
-def _scores(C, test, pred, protocol):
+def _scores(C, test, pred):
     y = C.r[test]
     row = {"rmse": rmse(y, pred), "mae": mae(y, pred)}
     _, item_ndcg = ndcg_by_group(C.i[test], y, pred, k=10)
@@ -128,11 +128,11 @@ def evaluate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, prot
         for cls in BASELINES:
             model = _tuned(cls, C, train, protocol, seed + f, min_ratings)
             records.append({"fold": f, "method": cls.name, "uses": cls.uses,
-                            **_scores(C, test, model.predict(C.u[test], C.i[test]), protocol)})
+                            **_scores(C, test, model.predict(C.u[test], C.i[test]))})
         hybrid = _hybrid(ratings, attributes, params, train)
         pred = hybrid.predict(ratings["user"].to_numpy(str)[test], ratings["item"].to_numpy(str)[test])
         records.append({"fold": f, "method": "hybrid", "uses": "ratings, attributes, factors",
-                        **_scores(C, test, pred, protocol)})
+                        **_scores(C, test, pred)})
     return summarise(pd.DataFrame(records))
 
 
@@ -154,11 +154,11 @@ def _few(C, ratings, attributes, params, train, test, seed, reveal, min_ratings,
         for cls in BASELINES:
             model = _tuned(cls, C, seen, "cold", seed, min_ratings)
             out.append({"fold": fold, "n": n, "method": cls.name, "uses": cls.uses,
-                        **_scores(C, mask, model.predict(C.u[scored], C.i[scored]), "few")})
+                        **_scores(C, mask, model.predict(C.u[scored], C.i[scored]))})
         hybrid = copy.deepcopy(base).fold_in(ratings.iloc[shown])
         pred = hybrid.predict(ratings["user"].to_numpy(str)[scored], ratings["item"].to_numpy(str)[scored])
         out.append({"fold": fold, "n": n, "method": "hybrid", "uses": "ratings, attributes, factors",
-                    **_scores(C, mask, pred, "few")})
+                    **_scores(C, mask, pred)})
     return out
 
 

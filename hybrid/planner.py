@@ -233,8 +233,11 @@ def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, see
         raise InputError(f"aim must be one of {', '.join(AIMS)}, found {aim!r}")
     if not 0 < target <= 1:
         raise InputError(f"target must be in (0, 1], found {target!r}")
-    threshold = responder_threshold or (model.settings_ or {}).get("score", {}).get("liked", 4.0) \
-        if responders == "likely" else None
+    threshold = None
+    if responders == "likely":
+        # the liked level of the model's settings, when it has them (library models may not)
+        liked = (getattr(model, "settings_", None) or {}).get("score", {}).get("liked", 4.0)
+        threshold = responder_threshold or liked
     A = Assessor(model, k, draws, seed, pool_min_ratings, responders, threshold)
     items = np.arange(len(model.item_ids_))
     now, se = A.at(items, 0.0)

@@ -34,8 +34,6 @@ def first_n_mask(indptr, n, seed):
 
 def _sub_stats(R, Fe, offset, n, seed):
     keep = first_n_mask(R.indptr, n, seed)
-    sub = R.copy()
-    sub.data = np.where(keep, sub.data, 0.0)
     counts = np.bincount(np.repeat(np.arange(R.shape[0]), np.diff(R.indptr))[keep], minlength=R.shape[0])
     # rebuild CSR without the dropped entries (row_grams reads every stored entry)
     indptr = np.concatenate([[0], np.cumsum(counts)])

@@ -53,7 +53,7 @@ class TastingClub:
     schema: dict
 
 
-def _lot_table(rng, ids, months, rank, embed):
+def _lot_table(rng, ids, months, embed):
     n = len(ids)
     fam_names = list(FAMILIES)
     mix = rng.dirichlet(np.full(len(fam_names), 0.35), n)
@@ -100,7 +100,7 @@ def tasting_club(n_members: int = 3000, n_lots: int = 600, n_new: int = 40, rank
              "roast": rng.normal(0, 0.3, (len(ROASTS), rank))}
     ids = np.array([f"L{j:04d}" for j in range(1, n_lots + n_new + 1)])
     months = np.array([f"2026-{1 + j * 10 // max(n_lots, 1):02d}" for j in range(n_lots)] + ["2027-01"] * n_new)
-    lots, part, quality = _lot_table(rng, ids, months, rank, embed)
+    lots, part, quality = _lot_table(rng, ids, months, embed)
     own = rng.normal(0, 0.45, part.shape)  # what no attribute explains
     x = part + own
     b_item = 0.8 * quality + rng.normal(0, 0.15, len(ids))

@@ -76,7 +76,7 @@ def _offsets(F: Factors, z):
     return np.zeros(len(z)) if bias is None else bias
 
 
-def residuals(data: RatingData, F: Factors, rows=None):
+def residuals(data: RatingData, F: Factors):
     """Yield chunks of ``r - prediction`` over all ratings (by user order)."""
     R = data.by_user
     ub, ut = F.split(F.user)

@@ -157,3 +157,12 @@ def test_ratings_needed_reaches_the_target_and_one_less_does_not(club):
     assert (at >= 0.8).all() and (before < 0.8).all()
     far = p.items[p.items["needed"].isna()]
     assert (far["needed_label"] == "more than 200").all()
+
+
+def test_likely_responders_work_for_a_library_model(club):
+    # a model fitted in Python has no CLI settings; the liked level then defaults to 4
+    m = HybridFactorModel(rank=3, epochs=5, schema=club.schema, text_min_df=1).fit(club.ratings, club.lots)
+    likely = plan(m, k=5, draws=8, responders="likely").items
+    active = plan(m, k=5, draws=8).items
+    assert likely["stability"].equals(active["stability"])           # stability now does not depend on it
+    assert (likely["needed"].dropna() >= 0).all() and len(likely) == len(active)
