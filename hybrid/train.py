@@ -98,7 +98,7 @@ def objective(data, F, A, lam_user, lam_map, weight, sse=None):
     if sse is None:
         sse = float(sum(float(e @ e) for e in residuals(data, F)))
     D = F.item - A @ F.W
-    prior = float(np.einsum("ij,jk,ik,i->", D, F.P, D, weight))
+    prior = float(np.sum((D @ F.P) * D, axis=1) @ weight)
     total = sse + lam_user * float(np.sum(F.user ** 2)) + prior + lam_map * float(np.sum(F.W ** 2))
     return total, sse
 
