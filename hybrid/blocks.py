@@ -174,3 +174,42 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
         edf[g] = eg
         sse += sg
     return z, edf, sse
+
+
+def sse_rows(indptr, indices, values, rows_z, other_z, biases):
+    """Sum of squared residuals of a block of rows: ``rows_z`` (n_rows, d) are the
+    rows' own blocks, ``other_z`` the other side's, ``values`` ratings less the mean.
+
+    >>> import scipy.sparse as sp
+    >>> R = sp.csr_matrix(np.array([[1.0, 0.0, 3.0]]))
+    >>> sse_rows(R.indptr, R.indices, R.data, np.array([[0.0, 1.0]]), np.zeros((3, 2)), True)
+    10.0
+    """
+    rows = np.repeat(np.arange(len(indptr) - 1), np.diff(indptr))
+    total = 0.0
+    for s in range(0, len(values), _BUDGET // 4):
+        r, c = rows[s:s + _BUDGET // 4], indices[s:s + _BUDGET // 4]
+        a, b = rows_z[r], other_z[c]
+        pred = np.einsum("nk,nk->n", a[:, 1:], b[:, 1:]) + a[:, 0] + b[:, 0] if biases \
+            else np.einsum("nk,nk->n", a, b)
+        e = values[s:s + _BUDGET // 4] - pred
+        total += float(e @ e)
+    return total
+
+
+def leverage_rows(indptr, indices, values, F_ext, y_offset, lam, members):
+    """``(sum of 1 / (1 - h), count)`` over a block's ratings whose column is in
+    ``members``, ``h`` each rating's leverage in its row's ridge fit (capped at 0.9)."""
+    d = F_ext.shape[1]
+    total, count = 0.0, 0
+    for g in groups(np.diff(indptr), d):
+        T, _ = gather(indptr, indices, values, g, F_ext, y_offset)
+        H = np.linalg.inv(T.transpose(0, 2, 1) @ T + lam * np.eye(d))
+        h = np.sum((T @ H.astype(T.dtype)) * T, axis=2)
+        lens = indptr[g + 1] - indptr[g]
+        pos = np.minimum(indptr[g][:, None] + np.arange(T.shape[1])[None, :], len(indices) - 1)
+        keep = (np.arange(T.shape[1])[None, :] < lens[:, None]) & members[indices[pos]]
+        total += float(np.sum(1.0 / (1.0 - np.minimum(h[keep], 0.9))))
+        count += int(keep.sum())
+    return total, count
+

@@ -193,7 +193,7 @@ class HybridFactorModel:
         return RatingData.from_codes(u, i, r, len(self.user_ids_), len(self.item_ids_), mu)
 
     def _prior_weight(self, data):
-        return self._weight_for_counts(np.diff(data.by_item.indptr))
+        return self._weight_for_counts(data.item_counts())
 
     def _weight_for_counts(self, counts):
         """Per-item multiplier of the prior term (ones unless the map is weighted)."""

@@ -14,9 +14,8 @@ spread (the empirical-Bayes estimate of Morris, JASA 1983).
 from __future__ import annotations
 
 import numpy as np
-import scipy.sparse as sp
 
-from .blocks import design, gather, groups, row_grams
+from .blocks import design, row_grams
 
 
 def well_rated(counts, min_ratings=20, least=50):
@@ -42,20 +41,8 @@ def predictive_sigma2(data, F, lam_user, sigma2, members):
     averaged over the ratings of well-rated items.
     """
     ib, ix = F.split(F.item)
-    R = data.by_user
-    Fe = design(ix, ib)
-    d = F.user.shape[1]
     offset = np.zeros(len(ix)) if ib is None else ib
-    total, count = 0.0, 0
-    for g in groups(np.diff(R.indptr), d):
-        T, _ = gather(R.indptr, R.indices, R.data, g, Fe, offset)
-        H = np.linalg.inv(T.transpose(0, 2, 1) @ T + lam_user * np.eye(d))
-        h = np.sum((T @ H.astype(T.dtype)) * T, axis=2)
-        lens = R.indptr[g + 1] - R.indptr[g]
-        pos = np.minimum(R.indptr[g][:, None] + np.arange(T.shape[1])[None, :], R.nnz - 1)
-        keep = (np.arange(T.shape[1])[None, :] < lens[:, None]) & members[R.indices[pos]]
-        total += float(np.sum(1.0 / (1.0 - np.minimum(h[keep], 0.9))))
-        count += int(keep.sum())
+    total, count = data.leverage(design(ix, ib), offset, lam_user, members)
     return sigma2 * total / max(count, 1)
 
 
@@ -65,19 +52,6 @@ def held_out_set(counts, seed, fraction=0.5, most=400, min_ratings=60, least=100
     members = np.flatnonzero(well_rated(counts, min_ratings, least))
     n = int(min(most, max(1, round(fraction * len(members)))))
     return np.sort(np.random.default_rng(seed + 17).choice(members, n, replace=False))
-
-
-def _without(data, held):
-    """The rating data with the held-out items' ratings removed (same shapes)."""
-    from .train import RatingData
-    keep = np.ones(data.by_item.shape[0])
-    keep[held] = 0.0
-    by_item = sp.diags(keep) @ data.by_item
-    by_item.eliminate_zeros()
-    by_item = by_item.tocsr()
-    by_user = by_item.T.tocsr()
-    by_user.sort_indices()
-    return RatingData(by_user, by_item, data.mu)
 
 
 def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-5):
@@ -111,21 +85,21 @@ def _fold(data, F, A, weight, held, lam_user, lam_map, rounds, n_jobs):
     the held items' statistics against them."""
     from .train import Factors, MapSolver, item_step, map_step, user_step
 
-    out = _without(data, held)
+    out = data.without(held)
     G = Factors(F.user.copy(), F.item.copy(), F.W.copy(), F.P.copy(), F.biases)
-    rated = np.diff(out.by_item.indptr) > 0
+    rated = out.item_counts() > 0
     solver = MapSolver(A[rated], weight[rated], lam_map)
     for _ in range(rounds):  # undo the co-adaptation: users and map without the held-out items
         user_step(out, G, lam_user, n_jobs)
         item_step(out, G, A, weight, n_jobs)
         map_step(G, A, rated, solver)
     ub, ut = G.split(G.user)
-    R = data.by_item[held]
+    R = data.item_rows(held)
     Fe = design(ut, ub)
     offset = np.zeros(len(ut)) if ub is None else ub
     grams, rhs = row_grams(R.indptr, R.indices, R.data, Fe, offset)
     off = 1 if G.biases else 0
-    pool = np.flatnonzero(np.diff(out.by_item.indptr) >= 20)
+    pool = np.flatnonzero(out.item_counts() >= 20)
     return {"G": G, "solver": solver, "rated": rated, "held": held, "R": R, "Fe": Fe,
             "offset": offset, "grams": grams, "rhs": rhs, "pool": G.item[pool, off:]}
 
@@ -141,7 +115,7 @@ def learn_prior(data, F, A, weight, sigma2, lam_user, lam_map, seed, n_jobs=1, r
     (kappa_prior, kappa_noise))``: the prior covariance and the variance of a
     new rating, both recalibrated.
     """
-    counts = np.diff(data.by_item.indptr)
+    counts = data.item_counts()
     held = held_out_set(counts, seed, fraction=1.0, most=400 * folds)
     parts = [_fold(data, F, A, weight, h, lam_user, lam_map, rounds, n_jobs)
              for h in np.array_split(held, folds) if len(h)]

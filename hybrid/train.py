@@ -22,15 +22,17 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from .blocks import design, solve_rows
+from .blocks import design, leverage_rows, solve_rows, sse_rows
 from .prior import learn_prior, predictive_sigma2, well_rated
-
-_CHUNK = 1 << 19  # ratings per chunk when evaluating residuals
-
 
 @dataclass
 class RatingData:
-    """Ratings as two CSR copies (by user, by item) of ``r - mu``."""
+    """Ratings as two CSR copies (by user, by item) of ``r - mu``.
+
+    The trainer touches the ratings only through the methods below, each a
+    pure block function of :mod:`hybrid.blocks` applied to a copy; another
+    engine (:mod:`hybrid.cluster`) offers the same methods over partitions.
+    """
 
     by_user: sp.csr_matrix
     by_item: sp.csr_matrix
@@ -50,6 +52,50 @@ class RatingData:
     @property
     def nnz(self) -> int:
         return self.by_user.nnz
+
+    @property
+    def shape(self) -> tuple:
+        """(n_users, n_items)."""
+        return self.by_user.shape
+
+    def item_counts(self) -> np.ndarray:
+        return np.diff(self.by_item.indptr)
+
+    def item_rows(self, rows) -> sp.csr_matrix:
+        """The ratings of items ``rows`` (a small CSR, kept locally)."""
+        return self.by_item[rows]
+
+    def solve(self, side, F_ext, y_offset, P, prior_mean=None, weight=None, n_jobs=1, with_edf=False,
+              rows=None):
+        """One half-step: :func:`hybrid.blocks.solve_rows` over every ``side`` row (or ``rows``)."""
+        R = self.by_user if side == "user" else self.by_item
+        R = R if rows is None else R[rows]
+        return solve_rows(R.indptr, R.indices, R.data, F_ext, y_offset, P, prior_mean, weight, n_jobs,
+                          with_edf)
+
+    def sse(self, F: "Factors") -> float:
+        """Sum of squared residuals of every rating."""
+        R = self.by_user
+        return sse_rows(R.indptr, R.indices, R.data, F.user, F.item, F.biases)
+
+    def leverage(self, F_ext, y_offset, lam_user, members):
+        """Leverage terms of the user fits (:func:`hybrid.blocks.leverage_rows`)."""
+        R = self.by_user
+        return leverage_rows(R.indptr, R.indices, R.data, F_ext, y_offset, lam_user, members)
+
+    def without(self, held) -> "RatingData":
+        """The same data less the ratings of items ``held`` (same shapes)."""
+        R = self.by_item
+        dropped = np.zeros(R.shape[0], bool)
+        dropped[held] = True
+        # select entries rather than scale rows by zero: a rating equal to the mean is a
+        # stored zero and must stay
+        keep = np.repeat(~dropped, np.diff(R.indptr))
+        indptr = np.concatenate([[0], np.cumsum(np.where(dropped, 0, np.diff(R.indptr)))])
+        by_item = sp.csr_matrix((R.data[keep], R.indices[keep], indptr), shape=R.shape)
+        by_user = by_item.T.tocsr()
+        by_user.sort_indices()
+        return RatingData(by_user, by_item, self.mu)
 
 
 @dataclass
@@ -76,35 +122,17 @@ def _offsets(F: Factors, z):
     return np.zeros(len(z)) if bias is None else bias
 
 
-def residuals(data: RatingData, F: Factors):
-    """Yield chunks of ``r - prediction`` over all ratings (by user order)."""
-    R = data.by_user
-    ub, ut = F.split(F.user)
-    ib, ix = F.split(F.item)
-    users = np.repeat(np.arange(R.shape[0]), np.diff(R.indptr))
-    for s in range(0, R.nnz, _CHUNK):
-        u, i = users[s:s + _CHUNK], R.indices[s:s + _CHUNK]
-        pred = np.einsum("nk,nk->n", ut[u], ix[i])
-        if ub is not None:
-            pred += ub[u] + ib[i]
-        yield R.data[s:s + _CHUNK] - pred
-
-
 def objective(data, F, A, lam_user, lam_map, weight, sse=None):
     """The trainer's objective and the data term (sum of squared errors).
 
     ``sse`` may be passed when known (the item step computes it for free).
     """
     if sse is None:
-        sse = float(sum(float(e @ e) for e in residuals(data, F)))
+        sse = data.sse(F)
     D = F.item - A @ F.W
     prior = float(np.sum((D @ F.P) * D, axis=1) @ weight)
     total = sse + lam_user * float(np.sum(F.user ** 2)) + prior + lam_map * float(np.sum(F.W ** 2))
     return total, sse
-
-
-def _rows(R, rows):
-    return R if rows is None else R[rows]
 
 
 _SINGLE_FROM = 250_000  # ratings from which the Gram products run in single precision
@@ -120,10 +148,9 @@ def _design(factors, bias, nnz):
 def user_step(data, F: Factors, lam_user, n_jobs=1, with_edf=False, rows=None):
     """Exact minimisation over every user's block (or ``rows`` only), items fixed."""
     ib, ix = F.split(F.item)
-    R = _rows(data.by_user, rows)
     d = F.user.shape[1]
-    z, edf, _ = solve_rows(R.indptr, R.indices, R.data, _design(ix, ib, data.nnz), _offsets(F, F.item),
-                           lam_user * np.eye(d), None, None, n_jobs, with_edf)
+    z, edf, _ = data.solve("user", _design(ix, ib, data.nnz), _offsets(F, F.item), lam_user * np.eye(d),
+                           None, None, n_jobs, with_edf, rows)
     F.user[slice(None) if rows is None else rows] = z
     return edf
 
@@ -131,10 +158,9 @@ def user_step(data, F: Factors, lam_user, n_jobs=1, with_edf=False, rows=None):
 def item_step(data, F: Factors, A, weight, n_jobs=1, with_edf=False, rows=None):
     """Exact minimisation over every item's block (or ``rows`` only), users and map fixed."""
     ub, ut = F.split(F.user)
-    R = _rows(data.by_item, rows)
     sel = slice(None) if rows is None else rows
-    z, edf, sse = solve_rows(R.indptr, R.indices, R.data, _design(ut, ub, data.nnz), _offsets(F, F.user),
-                             F.P, A[sel] @ F.W, weight[sel], n_jobs, with_edf)
+    z, edf, sse = data.solve("item", _design(ut, ub, data.nnz), _offsets(F, F.user), F.P, A[sel] @ F.W,
+                             weight[sel], n_jobs, with_edf, rows)
     F.item[sel] = z
     F.sse = sse  # the data term after this step (a map step leaves it unchanged)
     return edf
@@ -234,7 +260,7 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
         With the learned prior, choose the map penalty on the held-out items too
         (the chosen value is returned as ``F.lam_map``).
     """
-    n_users, n_items = data.by_user.shape
+    n_users, n_items = data.shape
     d = rank + 1 if biases else rank
     rng = np.random.default_rng(seed)
     weight = np.ones(n_items) if weight is None else np.asarray(weight, float)
@@ -243,7 +269,7 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
         item[:, 0] = 0.0
     F = Factors(user=np.zeros((n_users, d)), item=item, W=np.zeros((A.shape[1], d)),
                 P=lam_item * np.eye(d) if P0 is None else np.array(P0, float), biases=biases)
-    rated = np.diff(data.by_item.indptr) > 0
+    rated = data.item_counts() > 0
     solver = MapSolver(A[rated], weight[rated], lam_map)
     previous = np.inf
     for epoch in range(1, epochs + 1):
@@ -265,7 +291,7 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
     edf_i = item_step(data, F, A, weight, n_jobs, with_edf=True)
     sse = objective(data, F, A, lam_user, lam_map, weight)[1]
     fit_sigma2 = sse / max(data.nnz - edf_u.sum() - edf_i.sum(), 1.0)
-    counts = np.diff(data.by_item.indptr)
+    counts = data.item_counts()
     sigma2_new = predictive_sigma2(data, F, lam_user, fit_sigma2, well_rated(counts))
     if prior == "learned":
         Psi, lam_map, sigma2_new, F.scales = learn_prior(data, F, A, weight, sigma2_new, lam_user,

@@ -178,3 +178,13 @@ def test_bad_hyper_parameters_named(club):
     from hybrid.errors import InputError
     with pytest.raises(InputError, match="lam_user must be > 0, found -1"):
         HybridFactorModel(lam_user=-1).fit(club.ratings, club.lots)
+
+
+def test_rating_data_without_keeps_ratings_equal_to_the_mean():
+    # a rating equal to the mean is stored as an explicit zero; dropping items must not lose it
+    from hybrid.train import RatingData
+    data = RatingData.from_codes([0, 0, 1, 1], [0, 1, 0, 2], [2.0, 3.0, 3.0, 4.0], 2, 3)
+    assert data.mu == 3.0 and data.nnz == 4
+    out = data.without([2])
+    assert out.nnz == 3 and out.item_counts().tolist() == [2, 1, 0]
+    assert sorted(out.by_user.data.tolist()) == [-1.0, 0.0, 0.0]
