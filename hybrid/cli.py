@@ -13,9 +13,10 @@ import pandas as pd
 import typer
 
 from . import __version__
-from .config import load_config, model_params, settings_for
+from .config import load_config, model_params, settings_for, with_engine
 from .data import check_items_described, read_attributes, read_ratings
-from .display import EpochProgress, check_format, emit, emit_mapping, guarded, say
+from .display import (ADDRESS_HELP, ENGINE_HELP, PARTITIONS_HELP, EpochProgress, check_format, emit, emit_mapping,
+                      guarded, say)
 from .errors import InputError
 from .model import HybridFactorModel
 from .outputs import check_writable
@@ -25,15 +26,23 @@ app = typer.Typer(add_completion=False, no_args_is_help=True, rich_markup_mode=N
                   help="Score new, unrated catalogue items from their attributes, and plan "
                        "how many ratings each needs. Scores are estimates.")
 
+
+
 def train_model(ratings: Path, attributes: Path, cfg: dict, quiet: bool = False) -> HybridFactorModel:
     """Read both tables, fit, and keep the settings in the model (shared by train and demo)."""
+    from .cluster import engine_client
+
     params = model_params(cfg)
     table = read_ratings(ratings, cfg)
     attrs = read_attributes(attributes, cfg, params["schema"])
     check_items_described(table, attrs, source=str(ratings), row_base=2)
-    model = HybridFactorModel(**params)
-    with EpochProgress(params["epochs"], quiet) as progress:
-        model.fit(table, attrs, on_epoch=progress)
+    with engine_client(cfg) as client:
+        if client is not None:  # a cluster started here serves the fit by its address
+            params["address"] = client.scheduler.address
+        model = HybridFactorModel(**params)
+        with EpochProgress(params["epochs"], quiet) as progress:
+            model.fit(table, attrs, on_epoch=progress)
+    model.address = cfg["engine"]["address"] or None  # not a cluster that is gone
     model.settings_ = cfg
     return model
 
@@ -45,6 +54,9 @@ def train(ratings: Path = typer.Argument(..., help="Ratings table (CSV or Parque
           config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
           out: Path = typer.Option(..., "--out", help="Model file to write."),
           quiet: bool = typer.Option(False, "--quiet", help="No progress bar."),
+          engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
+          address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
+          partitions: Optional[int] = typer.Option(None, "--partitions", help=PARTITIONS_HELP),
           format: str = typer.Option("table", "--format", help="table, csv or json.")):
     """Fit the joint model and write a model file.
 
@@ -52,7 +64,7 @@ def train(ratings: Path = typer.Argument(..., help="Ratings table (CSV or Parque
     """
     check_format(format)
     check_writable(out)
-    cfg = load_config(config)
+    cfg = with_engine(load_config(config), engine, address, partitions)
     model = train_model(ratings, attributes, cfg, quiet)
     model.save(out)
     emit_mapping(_summary(model), format, f"trained {out}")
@@ -80,23 +92,23 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
           audience: Optional[int] = typer.Option(None, "--audience", help="Users listed per item."),
           neighbours: Optional[int] = typer.Option(None, "--neighbours", help="Nearest items listed."),
           chunk: Optional[int] = typer.Option(None, "--chunk", help="Items scored at a time."),
+          engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
+          address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
           format: str = typer.Option("table", "--format", help="table, csv or json (the summary).")):
     """Score items no one has rated: expected rating, liked share, audience, nearest items.
 
     Example: hybrid score club.hybrid new_lots.csv --out scored.csv
     """
+    from .cluster import engine_client
     from .scoring import score_items, write_scores
 
     check_format(format)
     check_writable(out)
     model = load_model(model_file)
     cfg = settings_for(model, config)
+    where = with_engine(load_config(config), engine, address)  # where to run is not the model's
     attrs = read_attributes(new_items, cfg, model.features_._spec(), require_all=False)
     s = cfg["score"]
-    chunks = score_items(model, attrs, liked=s["liked"] if liked is None else liked,
-                         audience=s["audience"] if audience is None else audience,
-                         neighbours=s["neighbours"] if neighbours is None else neighbours,
-                         chunk=s["chunk"] if chunk is None else chunk)
     head = []
 
     def keep_head(gen):
@@ -105,7 +117,12 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
                 head.append(df)
             yield df
 
-    n = write_scores(keep_head(chunks), out)
+    with engine_client(where) as client:
+        chunks = score_items(model, attrs, liked=s["liked"] if liked is None else liked,
+                             audience=s["audience"] if audience is None else audience,
+                             neighbours=s["neighbours"] if neighbours is None else neighbours,
+                             chunk=s["chunk"] if chunk is None else chunk, client=client)
+        n = write_scores(keep_head(chunks), out)
     top = head[0].nlargest(10, "expected_rating") if head else pd.DataFrame()
     if len(top):
         top = top.assign(nearest=[v[0][0] if v else "" for v in top["nearest"]])[

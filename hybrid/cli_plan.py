@@ -7,12 +7,13 @@ from typing import Optional
 import pandas as pd
 import typer
 
-from .config import load_config, model_params, settings_for
+from .config import load_config, model_params, settings_for, with_engine
 from .data import read_attributes, read_ratings
-from .display import check_format, emit, emit_mapping, say
+from .display import ADDRESS_HELP, ENGINE_HELP, check_format, emit, emit_mapping, say
 from .errors import InputError
 from .outputs import atomic_path, check_writable
 from .store import load_model
+
 
 CAUTION = ("Ratings are personal data, and a campaign contacts people: ask only customers who agreed "
            "to be asked, honour opt-outs, and follow the data-protection law that applies to you. "
@@ -44,6 +45,8 @@ def plan_command(
         aim: Optional[str] = typer.Option(None, "--aim", help="reach (items to target) or gain (total stability)."),
         new_items: Optional[Path] = typer.Option(None, "--new-items", help="Attribute table of unrated items to include."),
         config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
+        engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
+        address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
         format: str = typer.Option("table", "--format", help="table, csv or json (the summary).")):
     """Plan a sampling campaign: which items are under-covered, how many ratings each needs, whom to ask.
 
@@ -53,6 +56,7 @@ def plan_command(
 
     Example: hybrid plan club.hybrid --budget 500 --per-user 3 --out plan.csv --asks asks.csv
     """
+    from .cluster import engine_client
     from .planner import plan
 
     check_format(format)
@@ -64,11 +68,12 @@ def plan_command(
     if new_items is not None:
         model.add_items(read_attributes(new_items, cfg, model.features_._spec(), require_all=False))
     p = cfg["plan"]
-    result = plan(model, target=p["target"] if target is None else target, k=p["k"] if k is None else k,
-                  budget=budget, per_user=per_user, priority=priority, seed=p["seed"], draws=p["draws"],
-                  max_needed=p["max_needed"], aim=p["aim"] if aim is None else aim, per_item=per_item,
-                  responders=p["responders"], responder_threshold=p["responder_threshold"] or None,
-                  pool_min_ratings=p["pool_min_ratings"])
+    with engine_client(with_engine(load_config(config), engine, address)) as client:
+        result = plan(model, target=p["target"] if target is None else target, k=p["k"] if k is None else k,
+                      budget=budget, per_user=per_user, priority=priority, seed=p["seed"], draws=p["draws"],
+                      max_needed=p["max_needed"], aim=p["aim"] if aim is None else aim, per_item=per_item,
+                      responders=p["responders"], responder_threshold=p["responder_threshold"] or None,
+                      pool_min_ratings=p["pool_min_ratings"], client=client)
     write_table(result.items, out)
     if asks is not None:
         write_table(result.asks, asks)

@@ -70,6 +70,10 @@ DEFAULTS: dict[str, dict[str, Any]] = {
     },
     "engine": {
         "kind": "local",
+        "address": "",
+        "partitions": 8,
+        "workers": 2,
+        "shared_dir": "",
     },
 }
 
@@ -181,7 +185,14 @@ def validate(cfg: dict, source: str) -> None:
         (0 < cfg["plan"]["target"] <= 1, "plan.target", "a fraction in (0, 1]"),
         (cfg["plan"]["responders"] in ("active", "likely"), "plan.responders", "'active' or 'likely'"),
         (cfg["plan"]["aim"] in ("reach", "gain"), "plan.aim", "'reach' or 'gain'"),
-        (cfg["engine"]["kind"] in ("local",), "engine.kind", "'local'"),
+        (cfg["engine"]["kind"] in ("local", "dask"), "engine.kind", "'local' or 'dask'"),
+        (isinstance(cfg["engine"]["address"], str), "engine.address", "a scheduler address such as "
+         "'tcp://10.0.0.5:8786', or '' to start a local cluster"),
+        (isinstance(cfg["engine"]["partitions"], int) and cfg["engine"]["partitions"] >= 1,
+         "engine.partitions", "a whole number >= 1"),
+        (isinstance(cfg["engine"]["workers"], int) and cfg["engine"]["workers"] >= 1,
+         "engine.workers", "a whole number >= 1"),
+        (isinstance(cfg["engine"]["shared_dir"], str), "engine.shared_dir", "a folder path, or ''"),
     ]
     for ok, key, expected in checks:
         if not ok:
@@ -204,4 +215,22 @@ def model_params(cfg: dict) -> dict:
         "text_min_df": cfg["features"]["text_min_df"],
         "text_ngrams": cfg["features"]["text_ngrams"],
         "tag_separator": cfg["attributes"]["tag_separator"],
+        "engine": cfg["engine"]["kind"], "address": cfg["engine"]["address"] or None,
+        "partitions": cfg["engine"]["partitions"], "shared_dir": cfg["engine"]["shared_dir"] or None,
     }
+
+
+def with_engine(cfg: dict, kind: str | None = None, address: str | None = None,
+                partitions: int | None = None) -> dict:
+    """The settings with the command line's engine flags applied (and checked)."""
+    flags = {"kind": kind, "address": address, "partitions": partitions}
+    flags = {k: v for k, v in flags.items() if v is not None}
+    if not flags:
+        return cfg
+    cfg = copy.deepcopy(cfg)
+    if "address" in flags and "kind" not in flags:
+        flags["kind"] = "dask"  # an address only makes sense for a cluster
+    _merge(cfg, {"engine": flags}, (), "command line")
+    validate(cfg, "command line")
+    return cfg
+

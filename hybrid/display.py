@@ -15,6 +15,10 @@ from .errors import InputError
 
 FORMATS = ("table", "csv", "json")
 
+ENGINE_HELP = "Where to run: local (this process) or dask (a cluster; needs the dask extra)."
+ADDRESS_HELP = "Dask scheduler address, e.g. tcp://10.0.0.5:8786 (default: start a local cluster)."
+PARTITIONS_HELP = "Blocks per side of the rating matrix on the cluster."
+
 
 def fail(message: str, code: int = 2):
     """Print one line on stderr and exit."""

@@ -1,6 +1,7 @@
 """The fitted hybrid model: factors, attribute map, projection and prediction."""
 from __future__ import annotations
 
+import contextlib
 import time
 
 import numpy as np
@@ -13,7 +14,8 @@ from .train import Factors, RatingData, fit_factors, objective
 
 _PARAMS = ("rank", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
            "map_weighting", "weight_half", "holdout", "biases", "n_jobs", "text_max_features", "text_min_df",
-           "text_ngrams", "tag_separator")
+           "text_ngrams", "tag_separator", "engine", "address", "partitions",
+           "shared_dir")
 
 
 class HybridFactorModel:
@@ -56,6 +58,19 @@ class HybridFactorModel:
         Threads for the block solves.
     text_max_features, text_min_df, text_ngrams, tag_separator
         Attribute encoding, see :class:`hybrid.features.AttributeEncoder`.
+    engine : {'local', 'dask'}
+        Where the training's half-steps run: this process, or a Dask cluster
+        (:mod:`hybrid.cluster`; needs the ``dask`` extra).  The fitted model is
+        the same either way.
+    address : str, optional
+        With ``'dask'``: the scheduler (``tcp://host:8786``); ``None`` starts a
+        local cluster of two worker processes for the fit.
+    partitions : int
+        With ``'dask'``: blocks per side of the rating matrix.
+    shared_dir : str, optional
+        With ``'dask'``: a folder every worker can read, where the partitioned
+        ratings are written for the fit (and removed after); ``None`` uses the
+        temporary folder, which suits a cluster on this machine only.
 
     Examples
     --------
@@ -69,7 +84,8 @@ class HybridFactorModel:
     def __init__(self, rank=16, lam_user=5.0, lam_item=5.0, lam_map="auto", epochs=25, tol=1e-5,
                  seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0, holdout=0.0,
                  biases=True, n_jobs=1, text_max_features=2000, text_min_df=2, text_ngrams=1,
-                 tag_separator="|"):
+                 tag_separator="|", engine="local", address=None, partitions=8,
+                 shared_dir=None):
         self.rank = rank
         self.lam_user = lam_user
         self.lam_item = lam_item
@@ -88,6 +104,10 @@ class HybridFactorModel:
         self.text_min_df = text_min_df
         self.text_ngrams = text_ngrams
         self.tag_separator = tag_separator
+        self.engine = engine
+        self.address = address
+        self.partitions = partitions
+        self.shared_dir = shared_dir
 
     def get_params(self) -> dict:
         """Hyper-parameters as given to ``__init__``."""
@@ -108,6 +128,10 @@ class HybridFactorModel:
             raise InputError(f"map_weighting must be 'none' or 'precision', found {self.map_weighting!r}")
         if not 0 <= self.holdout < 1:
             raise InputError(f"holdout must be in [0, 1), found {self.holdout!r}")
+        if self.engine not in ("local", "dask"):
+            raise InputError(f"engine must be 'local' or 'dask', found {self.engine!r}")
+        if not (isinstance(self.partitions, (int, np.integer)) and self.partitions >= 1):
+            raise InputError(f"partitions must be a whole number >= 1, found {self.partitions!r}")
 
     # ----------------------------------------------------------------- fit
     def fit(self, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None, on_epoch=None):
@@ -149,24 +173,25 @@ class HybridFactorModel:
         r = ratings["rating"].to_numpy(float)
         train, valid = self._holdout_split(len(r))
         self.ratings_ = (u[train].astype(np.int32), i[train].astype(np.int32), r[train])
-        data = self._data()
-        validate = None
-        if valid.size:
-            uv, iv, rv = u[valid], i[valid], r[valid]
-            validate = lambda F: float(np.sqrt(np.mean((rv - self._predict_codes(F, data.mu, uv, iv)) ** 2)))
-        weight = self._prior_weight(data)
-        auto = self.lam_map == "auto"
-        F, sigma2, sigma2_new = fit_factors(data, self.attributes_, rank=self.rank, lam_user=self.lam_user,
-                                lam_item=self.lam_item, lam_map=1.0 if auto else float(self.lam_map),
-                                tune_map=auto and self.prior == "learned", epochs=self.epochs,
-                                tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
-                                biases=self.biases, n_jobs=self.n_jobs, validate=validate,
-                                on_epoch=on_epoch)
+        with self._training_data() as data:
+            validate = None
+            if valid.size:
+                uv, iv, rv = u[valid], i[valid], r[valid]
+                validate = lambda F: float(np.sqrt(np.mean((rv - self._predict_codes(F, data.mu, uv, iv)) ** 2)))
+            weight = self._prior_weight(data)
+            auto = self.lam_map == "auto"
+            F, sigma2, sigma2_new = fit_factors(
+                data, self.attributes_, rank=self.rank, lam_user=self.lam_user, lam_item=self.lam_item,
+                lam_map=1.0 if auto else float(self.lam_map), tune_map=auto and self.prior == "learned",
+                epochs=self.epochs, tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
+                biases=self.biases, n_jobs=self.n_jobs, validate=validate, on_epoch=on_epoch)
+            lam_map = float(F.lam_map)
+            final = objective(data, F, self.attributes_, self.lam_user, lam_map, weight)
         self._set_factors(F, data.mu, sigma2, weight, sigma2_new)
-        self.lam_map_ = float(F.lam_map)
+        self.lam_map_ = lam_map
         last = dict(F.history[-1])
         # the final state (after the learned prior and the last item step) is what is reported
-        last["objective"], sse = objective(data, F, self.attributes_, self.lam_user, self.lam_map_, weight)
+        last["objective"], sse = final
         last["train_rmse"] = float(np.sqrt(sse / data.nnz))
         last["valid_rmse"] = validate(F) if validate else float("nan")
         self.metrics_ = {"n_users": len(self.user_ids_), "n_items": len(self.item_ids_),
@@ -191,6 +216,23 @@ class HybridFactorModel:
         u, i, r = self.ratings_
         mu = getattr(self, "mu_", None)
         return RatingData.from_codes(u, i, r, len(self.user_ids_), len(self.item_ids_), mu)
+
+    @contextlib.contextmanager
+    def _training_data(self):
+        """The training ratings, here or partitioned on a Dask cluster for the fit."""
+        if self.engine == "local":
+            yield self._data()
+            return
+        from .cluster import ClusterRatingData, connect
+        u, i, r = self.ratings_
+        with connect(self.address) as client:
+            data = ClusterRatingData.from_codes(client, u, i, r, len(self.user_ids_), len(self.item_ids_),
+                                                partitions=self.partitions, shared_dir=self.shared_dir,
+                                                A=self.attributes_)
+            try:
+                yield data
+            finally:
+                data.close()
 
     def _prior_weight(self, data):
         return self._weight_for_counts(data.item_counts())

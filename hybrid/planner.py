@@ -133,6 +133,39 @@ class Assessor:
         return mean, se
 
 
+class ClusterAssessor:
+    """An :class:`Assessor` whose stability evaluations run on a Dask cluster.
+
+    The assessor is sent to every worker once; each call maps
+    :meth:`Assessor.at` over chunks of whole item blocks, so every item is
+    evaluated exactly as it is locally.
+    """
+
+    def __init__(self, assessor: Assessor, client, blocks_per_task: int = 4):
+        self.local = assessor
+        self.client = client
+        self.step = _ITEMS_PER_BLOCK * blocks_per_task
+        from .cluster import put
+        self.shared = put(client, assessor)
+
+    def __getattr__(self, name):
+        return getattr(self.local, name)
+
+    def at(self, items, extra):
+        from .cluster import map_chunks
+        items = np.asarray(items)
+        extra = np.broadcast_to(np.asarray(extra, float), items.shape)
+        chunks = ((items[s:s + self.step], extra[s:s + self.step]) for s in range(0, len(items), self.step))
+        parts = list(map_chunks(self.client, _assess, self.shared, chunks, window=1 << 30))
+        if not parts:
+            return np.empty(0), np.empty(0)
+        return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
+
+
+def _assess(assessor, items, extra):
+    return assessor.at(items, extra)
+
+
 def ratings_needed(assessor, items, now, target, max_needed, grid=GRID, curves=True):
     """The smallest number of extra ratings reaching ``target``, and stability curves.
 
@@ -192,7 +225,7 @@ def priority_weights(model, column):
 
 def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, seed=0, *,
          draws=64, max_needed=200, aim="reach", per_item=None, responders="active",
-         responder_threshold=None, pool_min_ratings=20) -> Plan:
+         responder_threshold=None, pool_min_ratings=20, client=None) -> Plan:
     """Assess every item and, given a budget, plan a sampling campaign.
 
     Parameters
@@ -214,6 +247,8 @@ def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, see
         Maximise the (weighted) number of items reaching the target, or the total gain.
     per_item : int, optional
         Most ratings planned for one item.
+    client : distributed.Client, optional
+        Evaluate the items' stability on this Dask cluster (same results).
 
     Returns
     -------
@@ -239,6 +274,8 @@ def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, see
         liked = (getattr(model, "settings_", None) or {}).get("score", {}).get("liked", 4.0)
         threshold = responder_threshold or liked
     A = Assessor(model, k, draws, seed, pool_min_ratings, responders, threshold)
+    if client is not None:
+        A = ClusterAssessor(A, client)
     items = np.arange(len(model.item_ids_))
     now, se = A.at(items, 0.0)
     curves, needed, grid = ratings_needed(A, items, now, target, max_needed, curves=(aim == "gain"))

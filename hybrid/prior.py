@@ -92,7 +92,7 @@ def _fold(data, F, A, weight, held, lam_user, lam_map, rounds, n_jobs):
     for _ in range(rounds):  # undo the co-adaptation: users and map without the held-out items
         user_step(out, G, lam_user, n_jobs)
         item_step(out, G, A, weight, n_jobs)
-        map_step(G, A, rated, solver)
+        map_step(G, A, rated, solver, out)
     ub, ut = G.split(G.user)
     R = data.item_rows(held)
     Fe = design(ut, ub)

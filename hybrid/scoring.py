@@ -18,8 +18,11 @@ from .related import nearest
 
 
 def score_items(model, attributes: pd.DataFrame, *, liked: float = 4.0, audience: int = 10,
-                neighbours: int = 5, chunk: int = 2000):
+                neighbours: int = 5, chunk: int = 2000, client=None, window: int = 4):
     """Yield one DataFrame per chunk of items, one row per item.
+
+    With a Dask ``client`` the chunks are scored on its workers (the model is
+    sent to each once, ``window`` chunks in flight); the rows are the same.
 
     Columns: ``item``, ``content_only`` (no ratings behind its vector),
     ``bias`` (projected), ``expected_rating`` (mean over all users of the
@@ -40,32 +43,37 @@ def score_items(model, attributes: pd.DataFrame, *, liked: float = 4.0, audience
     """
     if chunk < 1 or audience < 0 or neighbours < 0:
         raise InputError(f"chunk, audience and neighbours must be positive, found {chunk}, {audience}, {neighbours}")
+    from .cluster import map_chunks
+    known = pd.Index(model.item_ids_).get_indexer(attributes.index.astype(str))
+    parts = ((attributes.iloc[s:s + chunk], known[s:s + chunk]) for s in range(0, len(attributes), chunk))
+    yield from map_chunks(client, _score_chunk, (model, liked, audience, neighbours), parts, window)
+
+
+def _score_chunk(shared, part, known):
+    """The rows of one chunk of items (a pure function of the model and the chunk)."""
+    model, liked, audience, neighbours = shared
     off = 1 if model.biases else 0
     rated = np.flatnonzero(model.item_counts_ > 0)
-    C = model.item_blocks_[rated, off:]
-    known = pd.Index(model.item_ids_).get_indexer(attributes.index.astype(str))
     n_aud = min(audience, len(model.user_ids_))
-    for s in range(0, len(attributes), chunk):
-        part = attributes.iloc[s:s + chunk]
-        ids = part.index.to_numpy(dtype=str)
-        z = model._blocks_for_items(ids, part)
-        counts = np.where(known[s:s + chunk] >= 0, model.item_counts_[np.maximum(known[s:s + chunk], 0)], 0)
-        block = model.clip(next(model.score_blocks(z, chunk=len(z)))[1])
-        top = np.argpartition(-block, n_aud - 1, axis=1)[:, :n_aud] if n_aud else np.zeros((len(z), 0), int)
-        top_scores = np.take_along_axis(block, top, 1)
-        order = np.argsort(-top_scores, axis=1, kind="stable")
-        top, top_scores = np.take_along_axis(top, order, 1), np.take_along_axis(top_scores, order, 1)
-        self_pos = pd.Index(model.item_ids_[rated]).get_indexer(ids)
-        nidx, ndist = nearest(z[:, off:], C, neighbours, exclude=self_pos) if neighbours else (
-            np.zeros((len(z), 0), int), np.zeros((len(z), 0)))
-        users, items = model.user_ids_, model.item_ids_[rated]
-        yield pd.DataFrame({
-            "item": ids, "content_only": counts == 0,
-            "bias": z[:, 0] if model.biases else 0.0,
-            "expected_rating": block.mean(axis=1), "liked_share": (block >= liked).mean(axis=1),
-            "audience": [list(zip(users[t].tolist(), np.round(v, 4).tolist())) for t, v in zip(top, top_scores)],
-            "nearest": [list(zip(items[t].tolist(), np.round(v, 6).tolist())) for t, v in zip(nidx, ndist)],
-        })
+    ids = part.index.to_numpy(dtype=str)
+    z = model._blocks_for_items(ids, part)
+    counts = np.where(known >= 0, model.item_counts_[np.maximum(known, 0)], 0)
+    block = model.clip(next(model.score_blocks(z, chunk=len(z)))[1])
+    top = np.argpartition(-block, n_aud - 1, axis=1)[:, :n_aud] if n_aud else np.zeros((len(z), 0), int)
+    top_scores = np.take_along_axis(block, top, 1)
+    order = np.argsort(-top_scores, axis=1, kind="stable")
+    top, top_scores = np.take_along_axis(top, order, 1), np.take_along_axis(top_scores, order, 1)
+    self_pos = pd.Index(model.item_ids_[rated]).get_indexer(ids)
+    nidx, ndist = nearest(z[:, off:], model.item_blocks_[rated, off:], neighbours, exclude=self_pos) \
+        if neighbours else (np.zeros((len(z), 0), int), np.zeros((len(z), 0)))
+    users, items = model.user_ids_, model.item_ids_[rated]
+    return pd.DataFrame({
+        "item": ids, "content_only": counts == 0,
+        "bias": z[:, 0] if model.biases else 0.0,
+        "expected_rating": block.mean(axis=1), "liked_share": (block >= liked).mean(axis=1),
+        "audience": [list(zip(users[t].tolist(), np.round(v, 4).tolist())) for t, v in zip(top, top_scores)],
+        "nearest": [list(zip(items[t].tolist(), np.round(v, 6).tolist())) for t, v in zip(nidx, ndist)],
+    })
 
 
 def _flat(df: pd.DataFrame) -> pd.DataFrame:

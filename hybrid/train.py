@@ -193,17 +193,21 @@ class MapSolver:
         return other
 
     def solve(self, Z_rated, P):
+        if self.primal:
+            return self.solve_rhs(np.asarray(self.At.T @ (self.sw * Z_rated)), P)
         D, Q = np.linalg.eigh(P)
         c = self.lam_map / np.maximum(D, 1e-12)
-        Zq = (self.sw * Z_rated) @ Q
-        if self.primal:
-            core = self.V.T @ (self.At.T @ Zq)
-            Wq = self.V @ (core / (self.s[:, None] + c[None, :]))
-        else:
-            core = self.V.T @ Zq
-            Wq = self.At.T @ (self.V @ (core / (self.s[:, None] + c[None, :])))
+        core = self.V.T @ ((self.sw * Z_rated) @ Q)
+        Wq = self.At.T @ (self.V @ (core / (self.s[:, None] + c[None, :])))
         return np.asarray(Wq) @ Q.T
 
+    def solve_rhs(self, H, P):
+        """The map from the normal equations' right-hand side ``H = A^T diag(c) Z``
+        over the rated items (primal form: the Gram decomposition is ``p x p``)."""
+        D, Q = np.linalg.eigh(P)
+        c = self.lam_map / np.maximum(D, 1e-12)
+        core = self.V.T @ (H @ Q)
+        return (self.V @ (core / (self.s[:, None] + c[None, :]))) @ Q.T
 
     def leverages(self, rows, P):
         """Each rated item's leverage on its own projection, per eigen-direction of ``P``.
@@ -220,14 +224,20 @@ class MapSolver:
         return U2 @ (self.s[:, None] / (self.s[:, None] + c[None, :]))
 
 
-def map_step(F: Factors, A, rated, solver: MapSolver):
+def map_step(F: Factors, A, rated, solver: MapSolver, data=None):
     """Exact minimisation over ``W`` jointly with the unrated items' blocks.
 
     For any ``W`` the best block of an unrated item is its prior mean, at
     zero cost, so ``W`` is fitted to the rated items alone and the unrated
-    ones then follow ``W^T a_i``.
+    ones then follow ``W^T a_i``.  Data that can reduce the normal equations
+    where the items live (``data.map_rhs``, the cluster engine) does so.
     """
-    F.W = solver.solve(F.item[rated], F.P)
+    if solver.primal and hasattr(data, "map_rhs"):
+        weight = np.zeros(len(rated))
+        weight[rated] = solver.sw[:, 0] ** 2
+        F.W = solver.solve_rhs(data.map_rhs(F.item, weight), F.P)
+    else:
+        F.W = solver.solve(F.item[rated], F.P)
     unrated = ~rated
     if unrated.any():
         F.item[unrated] = A[unrated] @ F.W
@@ -276,7 +286,7 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
         t0 = time.perf_counter()
         user_step(data, F, lam_user, n_jobs)
         item_step(data, F, A, weight, n_jobs)
-        map_step(F, A, rated, solver)
+        map_step(F, A, rated, solver, data)
         total, sse = objective(data, F, A, lam_user, lam_map, weight, sse=F.sse)
         record = {"epoch": epoch, "objective": total, "train_rmse": float(np.sqrt(sse / data.nnz)),
                   "valid_rmse": float(validate(F)) if validate else float("nan"),
@@ -302,7 +312,7 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
         for _ in range(em_rounds):  # the map and items settle under the learned prior
             W_old = F.W
             item_step(data, F, A, weight, n_jobs)
-            map_step(F, A, rated, solver)
+            map_step(F, A, rated, solver, data)
             if np.abs(F.W - W_old).max() <= 1e-6 * max(np.abs(W_old).max(), 1.0):
                 break
     # a last item step (a descent step like any other) makes every rated

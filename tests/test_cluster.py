@@ -1,0 +1,219 @@
+"""The Dask engine: same model, plan and scores as the local engine, on a real
+``distributed.LocalCluster`` of two worker processes on loopback."""
+import os
+import signal
+import subprocess
+import sys
+import threading
+import time
+
+import numpy as np
+import pandas as pd
+import pytest
+
+distributed = pytest.importorskip("distributed")
+
+from hybrid import HybridFactorModel, plan  # noqa: E402
+from hybrid.cluster import ClusterRatingData  # noqa: E402
+from hybrid.samples import tasting_club  # noqa: E402
+from hybrid.scoring import score_items  # noqa: E402
+
+FIT = dict(rank=6, epochs=8, text_min_df=1)
+
+
+def _cluster():
+    return distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0",
+                                    host="127.0.0.1")
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    with _cluster() as c, distributed.Client(c) as client:
+        yield c, client
+
+
+@pytest.fixture(scope="module")
+def data():
+    return tasting_club(seed=2)
+
+
+@pytest.fixture(scope="module")
+def local_model(data):
+    return HybridFactorModel(**FIT, schema=data.schema).fit(data.ratings, data.lots)
+
+
+def _assert_same_model(a, b):
+    for name in ("item_blocks_", "user_blocks_", "map_", "prior_precision_"):
+        x, y = getattr(a, name), getattr(b, name)
+        assert np.abs(x - y).max() <= 1e-9 * max(1.0, np.abs(x).max()), name
+    assert abs(a.metrics_["objective"] - b.metrics_["objective"]) <= 1e-9 * a.metrics_["objective"]
+    assert a.sigma2_ == pytest.approx(b.sigma2_, rel=1e-9)
+    assert a.sigma2_new_ == pytest.approx(b.sigma2_new_, rel=1e-9)
+    assert a.lam_map_ == b.lam_map_
+
+
+def test_cluster_trainer_equals_local(cluster, data, local_model, monkeypatch):
+    c, _ = cluster
+    reductions = []
+    original = ClusterRatingData.map_rhs
+    monkeypatch.setattr(ClusterRatingData, "map_rhs", lambda self, *a: reductions.append(1) or original(self, *a))
+    remote = HybridFactorModel(**FIT, schema=data.schema, engine="dask", address=c.scheduler_address,
+                               partitions=4).fit(data.ratings, data.lots)
+    _assert_same_model(local_model, remote)
+    # the map steps went through the tree reduction on the workers (one per epoch at least)
+    assert len(reductions) >= FIT["epochs"]
+
+
+def test_cluster_plan_and_scores_are_identical(cluster, data, local_model):
+    _, client = cluster
+    here = plan(local_model, k=5, budget=60, per_user=2, draws=16)
+    there = plan(local_model, k=5, budget=60, per_user=2, draws=16, client=client)
+    pd.testing.assert_frame_equal(here.items, there.items, check_exact=True)
+    pd.testing.assert_frame_equal(here.asks, there.asks, check_exact=True)
+    assert len(here.asks) > 0
+    new = data.new_lots
+    local = pd.concat(score_items(local_model, new, chunk=3))
+    remote = pd.concat(score_items(local_model, new, chunk=3, client=client, window=2))
+    pd.testing.assert_frame_equal(local.reset_index(drop=True), remote.reset_index(drop=True), check_exact=True)
+
+
+def test_a_worker_killed_during_training_changes_nothing(data, local_model):
+    with _cluster() as c, distributed.Client(c) as client:
+        pids = list(client.run(os.getpid).values())
+        killed = []
+
+        def kill_soon(record):
+            if record["epoch"] == 2 and not killed:  # lands inside the next epoch's tasks
+                killed.append(pids[0])
+                threading.Timer(0.05, os.kill, (pids[0], signal.SIGKILL)).start()
+
+        remote = HybridFactorModel(**FIT, schema=data.schema, engine="dask", address=c.scheduler_address,
+                                   partitions=4).fit(data.ratings, data.lots, on_epoch=kill_soon)
+        _assert_same_model(local_model, remote)
+        time.sleep(0.2)
+        with pytest.raises(ProcessLookupError):
+            os.kill(killed[0], 0)   # the worker really died (its nanny started another)
+        assert killed[0] not in client.run(os.getpid).values()
+
+
+_PEAK = r"""
+import json, sys
+import numpy as np
+sys.path.insert(0, {bench!r})
+from bench_train import synthetic
+from hybrid.train import RatingData, fit_factors
+def run(n):
+    u, i, r, A = synthetic(20000, 5000, n)
+    data = RatingData.from_codes(u, i, r, 20000, 5000)
+    fit_factors(data, A, rank=16, lam_user=5.0, lam_item=5.0, lam_map=1.0, epochs=2, tol=0.0, seed=0)
+run(5000)  # warm: imports and buffers, as on the workers below
+sys.path.insert(0, {tests!r})
+from test_cluster import _reset_peak, _peak_rss
+before = _reset_peak()
+run(600000)
+print(json.dumps(_peak_rss() - before))
+"""
+
+
+def _reset_peak():
+    """Current resident memory, after resetting the peak (Linux: clear_refs 5).
+
+    The process's own peak (VmHWM) is read, not ru_maxrss: a spawned worker's
+    ru_maxrss keeps the peak of the process it was forked from.
+    """
+    import psutil
+    with open("/proc/self/clear_refs", "w") as fh:
+        fh.write("5")
+    return psutil.Process().memory_info().rss
+
+
+def _peak_rss():
+    with open("/proc/self/status") as fh:
+        kb = next(int(line.split()[1]) for line in fh if line.startswith("VmHWM:"))
+    return kb * 1024
+
+
+def test_worker_memory_is_a_fraction_of_one_process():
+    # the same fit in one process and on two workers with 8 partitions per side:
+    # each worker's growth in peak memory stays under 40% of the single process's (measured: about 15%)
+    bench = os.path.join(os.path.dirname(__file__), "bench")
+    single = int(subprocess.run([sys.executable, "-c", _PEAK.format(bench=bench, tests=os.path.dirname(__file__))],
+                                capture_output=True,
+                                text=True, check=True).stdout.strip().splitlines()[-1])
+    sys.path.insert(0, bench)
+    from bench_train import synthetic
+
+    from hybrid.train import fit_factors
+
+    def run(client, n):
+        u, i, r, A = synthetic(20000, 5000, n)
+        data = ClusterRatingData.from_codes(client, u, i, r, 20000, 5000, partitions=8, A=A)
+        fit_factors(data, A, rank=16, lam_user=5.0, lam_item=5.0, lam_map=1.0, epochs=2, tol=0.0, seed=0)
+        data.close()
+
+    with _cluster() as c, distributed.Client(c) as client:
+        run(client, 5000)  # warm: the workers import what a fit needs
+        before = client.run(_reset_peak)
+        run(client, 600000)
+        peak = client.run(_peak_rss)
+    growth = {w: peak[w] - before[w] for w in peak}
+    print(f"single process +{single / 2**20:.0f} MB; workers +"
+          + ", ".join(f"{g / 2**20:.0f} MB" for g in growth.values()))
+    assert max(growth.values()) < 0.4 * single, (single, growth)
+
+
+def test_commands_run_on_the_cluster_with_the_same_outputs(cluster, tmp_path):
+    # train with --engine dask (a local cluster the command starts and stops), then
+    # plan and score on the test cluster by --address: files equal the local ones
+    from typer.testing import CliRunner
+
+    from hybrid.cli import app
+    from hybrid.samples import write_samples
+    c, _ = cluster
+    runner = CliRunner()
+    run = lambda *a: runner.invoke(app, [str(x) for x in a])
+    paths = write_samples(tmp_path, tasting_club(n_members=300, n_lots=60, n_new=5, seed=4))
+    cfg = tmp_path / "coffee.toml"
+    cfg.write_text(open("configs/coffee.toml").read().replace("epochs = 30", "epochs = 4"))
+    out = {}
+    for where, flags in (("here", []), ("there", ["--engine", "dask", "--partitions", "3"])):
+        r = run("train", paths["ratings"], paths["lots"], "--config", cfg, "--out", tmp_path / f"{where}.hybrid",
+                "--quiet", *flags)
+        assert r.exit_code == 0, r.output
+    here, there = (hybrid_load(tmp_path / f"{w}.hybrid") for w in ("here", "there"))
+    _assert_same_model(here, there)
+    assert there.engine == "dask" and there.address is None   # the started cluster is gone
+    for where, flags in (("here", []), ("there", ["--address", c.scheduler_address])):
+        r = run("plan", tmp_path / "here.hybrid", "--budget", 40, "--out", tmp_path / f"plan-{where}.csv",
+                "--asks", tmp_path / f"asks-{where}.csv", *flags)
+        assert r.exit_code == 0, r.output
+        r = run("score", tmp_path / "here.hybrid", paths["new_lots"], "--out", tmp_path / f"score-{where}.csv",
+                "--chunk", 2, *flags)
+        assert r.exit_code == 0, r.output
+    for name in ("plan", "asks", "score"):
+        assert (tmp_path / f"{name}-here.csv").read_bytes() == (tmp_path / f"{name}-there.csv").read_bytes()
+    r = run("plan", tmp_path / "here.hybrid", "--out", tmp_path / "p.csv", "--engine", "spark")
+    assert r.exit_code == 2 and "engine.kind" in r.stderr and "Traceback" not in r.output
+    r = run("plan", tmp_path / "here.hybrid", "--out", tmp_path / "p.csv", "--address", "tcp://127.0.0.1:9")
+    assert r.exit_code == 2 and "cannot reach the Dask scheduler" in r.stderr, r.output
+    assert len(r.stderr.strip().splitlines()) == 1
+
+
+def hybrid_load(path):
+    from hybrid import load
+    return load(path)
+
+
+def test_the_local_engine_needs_no_dask():
+    # the extra is optional: nothing but the cluster engine imports it
+    code = ("import sys, hybrid, hybrid.cli, hybrid.cluster, hybrid.scoring, hybrid.planner; "
+            "print(sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"
+
+
+def test_without_the_extra_the_dask_engine_says_what_to_install(monkeypatch, data):
+    from hybrid.errors import InputError
+    monkeypatch.setitem(sys.modules, "distributed", None)   # as if not installed
+    with pytest.raises(InputError, match=r"pip install 'hybrid\[dask\]'"):
+        HybridFactorModel(**FIT, schema=data.schema, engine="dask").fit(data.ratings, data.lots)
