@@ -120,8 +120,8 @@ def _leverage(R, fixed, lam, members):
     return blocks.leverage_rows(*R, F_ext, y_offset, lam, members)
 
 
-def _rhs_part(A_path, z, weight):
-    A = sp.load_npz(A_path)
+def _rhs_part(A, z, weight):
+    z = z[0] if isinstance(z, tuple) else z   # a block solve's result, or the vectors themselves
     return np.asarray(A.T @ (weight[:, None] * z))
 
 
@@ -199,6 +199,7 @@ class ClusterRatingData:
         self._last_items = None
         self._futures = {side: [self._submit(_load, b, *self._drops(side)) for b in blist]
                          for side, blist in sides.items()}
+        self._attributes = None if A_paths is None else [self._submit(sp.load_npz, p) for p in A_paths]
 
     @classmethod
     def from_codes(cls, client, users, items, ratings, n_users, n_items, mu=None, partitions=8,
@@ -230,15 +231,22 @@ class ClusterRatingData:
 
     def close(self):
         """Release the blocks; remove the work folder if this object made it."""
-        for futures in self._futures.values():
+        for futures in list(self._futures.values()) + [self._attributes or []]:
             for f in futures:
                 f.release()
         if self._owner:
             shutil.rmtree(self.workdir, ignore_errors=True)
 
     # ---------------------------------------------------------------- plumbing
-    def _submit(self, fn, *args):
-        return self.client.submit(fn, *args, pure=False, retries=_RETRIES)
+    def _submit(self, fn, *args, near=None):
+        # near: run where that block already is, if its worker is free (blocks stay put)
+        hint = {} if near is None else {"workers": near, "allow_other_workers": True}
+        return self.client.submit(fn, *args, pure=False, retries=_RETRIES, **hint)
+
+    def _homes(self, futures):
+        """For each future, the workers holding it (None where unknown)."""
+        held = self.client.who_has(futures)
+        return [list(held.get(f.key, ())) or None for f in futures]
 
     def _drops(self, side):
         if self.drop is None:
@@ -264,10 +272,11 @@ class ClusterRatingData:
             raise InputError("the Dask engine re-solves whole sides only; fold new ratings in locally")
         fixed = put(self.client, (F_ext, y_offset, P))
         parts = []
-        for blk, R in zip(self.sides[side], self._futures[side]):
+        homes = self._homes(self._futures[side])
+        for blk, R, home in zip(self.sides[side], self._futures[side], homes):
             pm = None if prior_mean is None else prior_mean[blk.lo:blk.hi]
             w = None if weight is None else weight[blk.lo:blk.hi]
-            parts.append(self._submit(_solve, R, fixed, pm, w, with_edf))
+            parts.append(self._submit(_solve, R, fixed, pm, w, with_edf, near=home))
         results = self.client.gather(parts)
         z = np.vstack([r[0] for r in results])
         if side == "item":  # kept on the workers for the map step's reduction
@@ -281,14 +290,13 @@ class ClusterRatingData:
         The item step's results are used where they are still ``Z`` (they stay
         on the workers); otherwise the blocks of ``Z`` are sent.
         """
-        if self.A_paths is None:
+        if self._attributes is None:
             raise InputError("this data was built without attributes; pass A to from_codes")
         fresh = self._last_items is not None and np.array_equal(self._last_items[1], Z)
         parts = []
-        for b, (blk, path) in enumerate(zip(self.sides["item"], self.A_paths)):
-            z = self.client.submit(lambda r: r[0], self._last_items[0][b], pure=False) if fresh \
-                else Z[blk.lo:blk.hi]
-            parts.append(self._submit(_rhs_part, path, z, weight[blk.lo:blk.hi]))
+        for b, (blk, A_b) in enumerate(zip(self.sides["item"], self._attributes)):
+            z = self._last_items[0][b] if fresh else Z[blk.lo:blk.hi]
+            parts.append(self._submit(_rhs_part, A_b, z, weight[blk.lo:blk.hi]))
         return _tree_sum(self.client, parts)
 
     def sse(self, F) -> float:
