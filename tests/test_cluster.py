@@ -10,6 +10,8 @@ import time
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 distributed = pytest.importorskip("distributed")
 
@@ -217,3 +219,51 @@ def test_without_the_extra_the_dask_engine_says_what_to_install(monkeypatch, dat
     monkeypatch.setitem(sys.modules, "distributed", None)   # as if not installed
     with pytest.raises(InputError, match=r"pip install 'hybrid\[dask\]'"):
         HybridFactorModel(**FIT, schema=data.schema, engine="dask").fit(data.ratings, data.lots)
+
+
+def test_every_rating_data_method_matches_the_local_one(cluster):
+    # the contract the trainer relies on: ClusterRatingData's methods give RatingData's answers
+    from hybrid.blocks import design
+    from hybrid.train import Factors, RatingData
+    _, client = cluster
+    rng = np.random.default_rng(5)
+    n_users, n_items, d = 70, 40, 4
+    key = np.unique(rng.integers(0, n_users * n_items, 900))
+    u, i = key // n_items, key % n_items
+    r = rng.integers(1, 6, len(key)).astype(float)
+    here = RatingData.from_codes(u, i, r, n_users, n_items)
+    there = ClusterRatingData.from_codes(client, u, i, r, n_users, n_items, partitions=3)
+    try:
+        F = Factors(rng.normal(size=(n_users, d)), rng.normal(size=(n_items, d)), np.zeros((1, d)), np.eye(d))
+        assert there.nnz == here.nnz and there.shape == here.shape
+        assert np.array_equal(there.item_counts(), here.item_counts())
+        Fe, off = design(F.item[:, 1:], F.item[:, 0]), F.item[:, 0]
+        prior, weight = rng.normal(size=(n_users, d)), rng.uniform(0.5, 2, n_users)
+        for a, b in zip(here.solve("user", Fe, off, 2 * np.eye(d), prior, weight, with_edf=True),
+                        there.solve("user", Fe, off, 2 * np.eye(d), prior, weight, with_edf=True)):
+            assert np.allclose(a, b, rtol=1e-12, atol=1e-12)
+        assert there.sse(F) == pytest.approx(here.sse(F), rel=1e-12)
+        members = rng.random(n_items) < 0.5
+        assert np.allclose(there.leverage(Fe, off, 3.0, members), here.leverage(Fe, off, 3.0, members))
+        held = np.array([3, 17, 29])
+        a, b = here.without(held), there.without(held)
+        assert b.nnz == a.nnz and np.array_equal(b.item_counts(), a.item_counts())
+        Fu = design(F.user[:, 1:], F.user[:, 0])
+        assert np.allclose(a.solve("item", Fu, F.user[:, 0], np.eye(d))[0],
+                           b.solve("item", Fu, F.user[:, 0], np.eye(d))[0], rtol=1e-12, atol=1e-12)
+        rows = np.array([30, 2, 17])
+        assert (there.item_rows(rows) != here.item_rows(rows)).nnz == 0
+    finally:
+        there.close()
+
+
+@given(st.lists(st.integers(0, 50), min_size=1, max_size=60), st.integers(1, 12))
+@settings(max_examples=200, deadline=None)
+def test_blocks_cover_the_rows_with_balanced_ratings(counts, partitions):
+    from hybrid.cluster import _bounds
+    counts = np.array(counts)
+    blocks = _bounds(counts, partitions)
+    assert blocks[0][0] == 0 and blocks[-1][1] == len(counts) and len(blocks) <= partitions
+    assert all(hi > lo for lo, hi in blocks) and all(a[1] == b[0] for a, b in zip(blocks, blocks[1:]))
+    most = max(counts[lo:hi].sum() for lo, hi in blocks)
+    assert most <= counts.sum() / partitions + counts.max()
