@@ -75,6 +75,25 @@ def engine_client(settings: dict):
         yield client
 
 
+@contextlib.contextmanager
+def training_data(model):
+    """A fitting model's ratings, here or partitioned on a Dask cluster for the fit,
+    as its ``engine`` says (``mu`` always from these ratings, not an earlier fit)."""
+    from .train import RatingData
+    u, i, r = model.ratings_
+    n_users, n_items = len(model.user_ids_), len(model.item_ids_)
+    if model.engine == "local":
+        yield RatingData.from_codes(u, i, r, n_users, n_items)
+        return
+    with connect(model.address) as client:
+        data = ClusterRatingData.from_codes(client, u, i, r, n_users, n_items, partitions=model.partitions,
+                                            shared_dir=model.shared_dir, A=model.attributes_)
+        try:
+            yield data
+        finally:
+            data.close()
+
+
 def _bounds(counts, partitions):
     """Row ranges ``[lo, hi)`` of about equal numbers of ratings (at most ``partitions``)."""
     edges = np.searchsorted(np.cumsum(counts), np.linspace(0, counts.sum(), partitions + 1)[1:-1])

@@ -1,7 +1,6 @@
 """The fitted hybrid model: factors, attribute map, projection and prediction."""
 from __future__ import annotations
 
-import contextlib
 import time
 
 import numpy as np
@@ -10,6 +9,7 @@ import pandas as pd
 from .data import check_items_described, validate_attributes, validate_ratings
 from .errors import InputError
 from .features import AttributeEncoder
+from .cluster import training_data
 from .train import Factors, RatingData, fit_factors, objective
 
 _PARAMS = ("rank", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
@@ -173,7 +173,7 @@ class HybridFactorModel:
         r = ratings["rating"].to_numpy(float)
         train, valid = self._holdout_split(len(r))
         self.ratings_ = (u[train].astype(np.int32), i[train].astype(np.int32), r[train])
-        with self._training_data() as data:
+        with training_data(self) as data:
             validate = None
             if valid.size:
                 uv, iv, rv = u[valid], i[valid], r[valid]
@@ -216,23 +216,6 @@ class HybridFactorModel:
         u, i, r = self.ratings_
         mu = getattr(self, "mu_", None)
         return RatingData.from_codes(u, i, r, len(self.user_ids_), len(self.item_ids_), mu)
-
-    @contextlib.contextmanager
-    def _training_data(self):
-        """The training ratings, here or partitioned on a Dask cluster for the fit."""
-        if self.engine == "local":
-            yield self._data()
-            return
-        from .cluster import ClusterRatingData, connect
-        u, i, r = self.ratings_
-        with connect(self.address) as client:
-            data = ClusterRatingData.from_codes(client, u, i, r, len(self.user_ids_), len(self.item_ids_),
-                                                partitions=self.partitions, shared_dir=self.shared_dir,
-                                                A=self.attributes_)
-            try:
-                yield data
-            finally:
-                data.close()
 
     def _prior_weight(self, data):
         return self._weight_for_counts(data.item_counts())

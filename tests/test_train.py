@@ -188,3 +188,11 @@ def test_rating_data_without_keeps_ratings_equal_to_the_mean():
     out = data.without([2])
     assert out.nnz == 3 and out.item_counts().tolist() == [2, 1, 0]
     assert sorted(out.by_user.data.tolist()) == [-1.0, 0.0, 0.0]
+
+
+def test_refitting_a_model_on_other_ratings_takes_their_mean(club):
+    m = HybridFactorModel(rank=2, epochs=2, schema=club.schema, text_min_df=1, prior="fixed")
+    m.fit(club.ratings, club.lots)
+    shifted = club.ratings.assign(rating=club.ratings["rating"] - 1.0)
+    m.fit(shifted, club.lots)
+    assert m.mu_ == pytest.approx(shifted["rating"].mean())
