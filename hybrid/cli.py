@@ -15,8 +15,8 @@ import typer
 from . import __version__
 from .config import load_config, model_params, settings_for, with_engine
 from .data import check_items_described, read_attributes, read_ratings
-from .display import (ADDRESS_HELP, ENGINE_HELP, PARTITIONS_HELP, EpochProgress, check_format, emit, emit_mapping,
-                      guarded, say)
+from .display import (ADDRESS_HELP, ENGINE_HELP, PARTITIONS_HELP, EpochProgress, check_format, emit,
+                      emit_mapping, guarded, say)
 from .errors import InputError
 from .model import HybridFactorModel
 from .outputs import check_writable

@@ -9,9 +9,8 @@ no worker ever holds the whole rating matrix.
 
 Each half-step sends the fixed side's factors once (inside a task, so that
 they can be computed again if the worker holding them dies), solves every
-block with
-:func:`hybrid.blocks.solve_rows`, the very function the local trainer uses,
-and gathers only the new factors.  The map step's right-hand side is a tree
+block with :func:`hybrid.blocks.solve_rows`, the very function the local
+trainer uses, and gathers only the new factors.  The map step's right-hand side is a tree
 reduction of each item block's share of the attribute normal equations.
 :class:`ClusterRatingData` offers the same methods as
 :class:`hybrid.train.RatingData`, so the trainer is one program for both.
@@ -192,9 +191,10 @@ class ClusterRatingData:
 
     Offers the methods of :class:`hybrid.train.RatingData` that the trainer
     uses; each runs a pure function of :mod:`hybrid.blocks` per block on the
-    workers.  ``workdir`` must be readable by every worker (a shared
-    filesystem on a real cluster; any folder on one machine).  Views made
-    by :meth:`without` share the files of the data they came from.
+    workers, which read the blocks from files under ``workdir`` (so it must
+    be readable by every worker: a shared filesystem on a real cluster, any
+    folder on one machine).  Views made by :meth:`without` share the files
+    and the attribute blocks of the data they came from.
 
     Examples
     --------
@@ -205,7 +205,8 @@ class ClusterRatingData:
     (2, [1, 1])
     """
 
-    def __init__(self, client, sides, shape, mu, item_counts, workdir, A_paths=None, drop=None, owner=False):
+    def __init__(self, client, sides, shape, mu, item_counts, workdir, A_paths=None, drop=None, owner=False,
+                 attributes=None):
         self.client = client
         self.sides = sides            # {"user": [_Block], "item": [_Block]}
         self._shape = tuple(shape)
@@ -218,7 +219,8 @@ class ClusterRatingData:
         self._last_items = None
         self._futures = {side: [self._submit(_load, b, *self._drops(side)) for b in blist]
                          for side, blist in sides.items()}
-        self._attributes = None if A_paths is None else [self._submit(sp.load_npz, p) for p in A_paths]
+        self._attributes = attributes if attributes is not None or A_paths is None else \
+            [self._submit(sp.load_npz, p) for p in A_paths]
 
     @classmethod
     def from_codes(cls, client, users, items, ratings, n_users, n_items, mu=None, partitions=8,
@@ -249,7 +251,8 @@ class ClusterRatingData:
         return cls(client, sides, (n_users, n_items), mu, counts, str(root), A_paths, None, owner=True)
 
     def close(self):
-        """Release the blocks; remove the work folder if this object made it."""
+        """Release the blocks; remove the work folder if this object made it (views
+        share it: close them first, or just drop them)."""
         for futures in list(self._futures.values()) + [self._attributes or []]:
             for f in futures:
                 f.release()
@@ -337,7 +340,7 @@ class ClusterRatingData:
         counts = self._counts.copy()
         counts[held] = 0
         return ClusterRatingData(self.client, self.sides, self._shape, self.mu, counts, self.workdir,
-                                 self.A_paths, held)
+                                 self.A_paths, held, attributes=self._attributes)
 
     def item_rows(self, rows) -> sp.csr_matrix:
         rows = np.asarray(rows, np.int64)
@@ -362,8 +365,9 @@ def map_chunks(client, fn, shared, chunks, window: int = 4):
     """Yield ``fn(shared, *chunk)`` for each chunk, in order, computed on the cluster.
 
     ``shared`` (or a future from :func:`put`) goes to the cluster once; at most
-    ``window`` chunks are in flight, so a long stream of chunks never piles up in memory.  With
-    ``client=None`` the chunks are computed here, by the same function.
+    ``window`` chunks are in flight, so a long stream of chunks never piles up
+    in memory.  With ``client=None`` the chunks are computed here, by the same
+    function.
     """
     if client is None:
         for chunk in chunks:
