@@ -10,15 +10,21 @@ prior mean and ``P`` a shared prior precision.  The closed form is
 ``(F^T F + w P) z = F^T y + w P m``.
 
 These functions are pure: they take arrays and return arrays, so a block of
-rows can be solved on another core, or another machine, unchanged.  Rows are
-grouped by their number of ratings and padded to a common length so the
-Gram matrices come from batched BLAS products instead of a Python loop per
-rating.
+rows can be solved on another core, or another machine, unchanged.  The
+half-step itself (:func:`solve_rows`) runs a small compiled row solver
+(numba): per row one BLAS product for ``F^T F`` and a Cholesky solve, with
+no Python per row and the GIL released for threads.  At this size (a 33 x 33
+system per row) a LAPACK call costs more in overhead than in arithmetic,
+which is why the factorisation is written out here.  The statistics the
+planner and the prior need (:func:`row_grams`, :func:`leverage_rows`) group
+rows by their number of ratings and pad them to a common length, so the
+Gram matrices come from batched BLAS products.
 """
 from __future__ import annotations
 
 from concurrent.futures import ThreadPoolExecutor
 
+import numba
 import numpy as np
 from threadpoolctl import threadpool_limits
 
@@ -90,26 +96,6 @@ def row_grams(indptr, indices, values, F_ext, y_offset, rows=None):
     return G, h
 
 
-def _solve_group(g, indptr, indices, values, F_ext, y_offset, P, prior_mean, weight, with_edf):
-    T, y = gather(indptr, indices, values, g, F_ext, y_offset)
-    Tt = T.transpose(0, 2, 1)
-    # the products may run in single precision (F_ext's dtype); the solve is always double
-    A = (Tt @ T).astype(np.float64) + weight[g, None, None] * P
-    b = (Tt @ y.astype(T.dtype)[..., None])[..., 0].astype(np.float64)
-    if prior_mean is not None:
-        b = b + weight[g, None] * (prior_mean[g] @ P)
-    if not with_edf:
-        z, edf = np.linalg.solve(A, b[..., None])[..., 0], np.zeros(len(g))
-    else:
-        # one factorisation for both: the solution and trace(F^T F (F^T F + wP)^-1),
-        # the effective degrees of freedom of each ridge fit
-        sol = np.linalg.solve(A, np.concatenate([b[..., None], A - weight[g, None, None] * P], axis=2))
-        z, edf = sol[..., 0], np.einsum("gii->g", sol[..., 1:])
-    # the data term of the objective comes for free here (padding rows are zero)
-    e = y - (T @ z.astype(T.dtype)[..., None])[..., 0]
-    return g, z, edf, float(np.sum(e.astype(np.float64) ** 2))
-
-
 def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, weight=None,
                n_jobs: int = 1, with_edf: bool = False):
     """Solve every row's ridge problem of one half-step.
@@ -130,11 +116,9 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
     weight : ndarray (n_rows,), optional
         Per-row multiplier of the prior term; ones when absent.
     n_jobs : int
-        Threads over groups of rows (BLAS and LAPACK release the GIL).
-        ``F_ext`` in float32 makes the Gram products single precision
-        (twice as fast; the solve stays in double precision).
+        Threads sharing the rows (the compiled row solver releases the GIL).
     with_edf : bool
-        Also sum the effective degrees of freedom (costs a wider solve).
+        Also each row's effective degrees of freedom (costs ``d`` more solves).
 
     Returns
     -------
@@ -154,26 +138,107 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
     >>> round(float(z[0, 0]), 6)                      # 4 / (2 + 1)
     1.333333
     """
-    n = len(indptr) - 1
+    # BLAS on one thread throughout: our threads share the rows (idle BLAS threads would
+    # spin against them), and the answer does not depend on how many threads there are
+    with threadpool_limits(1):
+        n = len(indptr) - 1
+        d = F_ext.shape[1]
+        indptr = np.asarray(indptr, np.int64)
+        weight = np.ones(n) if weight is None else np.ascontiguousarray(weight, float)
+        prior = np.zeros((n, d)) if prior_mean is None else np.ascontiguousarray(prior_mean, float)
+        z, edf, sse = prior.copy(), np.zeros(n), np.zeros(n)   # unrated rows keep their prior mean
+        P = np.ascontiguousarray(P, float)
+        data = (indptr, np.asarray(indices, np.int64), np.asarray(values, float))
+        fixed = (np.ascontiguousarray(F_ext, float), np.ascontiguousarray(y_offset, float), P,
+                 np.ascontiguousarray(weight[:, None] * (prior @ P.T)), weight, with_edf, z, edf, sse)
+        shares = _shares(np.diff(indptr), max(1, int(n_jobs)))
+        if len(shares) > 1:
+            with ThreadPoolExecutor(len(shares)) as pool:
+                list(pool.map(lambda rows: _solve_kernel(*data, rows, *fixed), shares))
+        else:
+            _solve_kernel(*data, shares[0], *fixed)
+    return z, edf, float(sse.sum())
+
+
+@numba.njit(nogil=True, cache=True)
+def _solve_kernel(indptr, indices, values, rows, F_ext, y_offset, P, prior_rhs, weight, with_edf,
+                  z_out, edf_out, sse_out):  # pragma: no cover - compiled
+    """Each row of ``rows``: gather its design, ``F^T F`` by one BLAS product, an
+    in-place Cholesky factorisation and two triangular solves.  Compiled, with
+    the GIL released, so threads can share the rows; ``prior_rhs`` is each
+    row's ``w P m``."""
     d = F_ext.shape[1]
-    weight = np.ones(n) if weight is None else weight
-    z = np.zeros((n, d)) if prior_mean is None else prior_mean.astype(float, copy=True)
-    counts = np.diff(indptr)
-    jobs = list(groups(counts, d))
-    args = (indptr, indices, values, F_ext, y_offset, P, prior_mean, weight, with_edf)
-    if n_jobs > 1 and len(jobs) > 1:
-        # our threads share out the groups; BLAS threads inside them would only contend
-        with threadpool_limits(1), ThreadPoolExecutor(n_jobs) as pool:
-            results = list(pool.map(lambda g: _solve_group(g, *args), jobs))
-    else:
-        results = [_solve_group(g, *args) for g in jobs]
-    edf = np.zeros(n)
-    sse = 0.0
-    for g, zg, eg, sg in results:
-        z[g] = zg
-        edf[g] = eg
-        sse += sg
-    return z, edf, sse
+    for r in rows:
+        s, e = indptr[r], indptr[r + 1]
+        T = np.empty((e - s, d))
+        y = np.empty(e - s)
+        b = prior_rhs[r].copy()
+        for j in range(e - s):
+            c = indices[s + j]
+            y[j] = values[s + j] - y_offset[c]
+            for a in range(d):
+                T[j, a] = F_ext[c, a]
+                b[a] += y[j] * F_ext[c, a]
+        A = T.T @ T
+        for a in range(d):
+            for c in range(d):
+                A[a, c] += weight[r] * P[a, c]
+        _cholesky(A)
+        z = _cho_solve(A, b)
+        sse = 0.0
+        for j in range(e - s):
+            fit = 0.0
+            for a in range(d):
+                fit += T[j, a] * z[a]
+            sse += (y[j] - fit) ** 2
+        sse_out[r] = sse
+        z_out[r] = z
+        if with_edf:  # trace(F^T F A^-1) = d - w trace(P A^-1): the ridge fit's degrees of freedom
+            tr = 0.0
+            for j in range(d):
+                tr += _cho_solve(A, P[:, j].copy())[j]
+            edf_out[r] = d - weight[r] * tr
+
+
+@numba.njit(nogil=True, cache=True)
+def _cholesky(A):  # pragma: no cover - compiled
+    """In place: the lower triangle of ``A`` becomes ``L`` with ``A = L L^T``."""
+    d = A.shape[0]
+    for k in range(d):
+        v = A[k, k]
+        for t in range(k):
+            v -= A[k, t] * A[k, t]
+        v = np.sqrt(v)
+        A[k, k] = v
+        for i in range(k + 1, d):
+            x = A[i, k]
+            for t in range(k):
+                x -= A[i, t] * A[k, t]
+            A[i, k] = x / v
+
+
+@numba.njit(nogil=True, cache=True)
+def _cho_solve(L, b):  # pragma: no cover - compiled
+    """``(L L^T)^-1 b`` for the factor from :func:`_cholesky` (``b`` is overwritten)."""
+    d = L.shape[0]
+    for k in range(d):
+        x = b[k]
+        for t in range(k):
+            x -= L[k, t] * b[t]
+        b[k] = x / L[k, k]
+    for k in range(d - 1, -1, -1):
+        x = b[k]
+        for t in range(k + 1, d):
+            x -= L[t, k] * b[t]
+        b[k] = x / L[k, k]
+    return b
+
+
+def _shares(counts, n_jobs):
+    """The rated rows dealt into ``n_jobs`` lists of about equal work (largest first)."""
+    order = np.argsort(-counts, kind="stable")
+    order = order[counts[order] > 0]
+    return [order[j::n_jobs] for j in range(n_jobs)]
 
 
 def sse_rows(indptr, indices, values, rows_z, other_z, biases):

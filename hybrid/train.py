@@ -21,6 +21,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
+from threadpoolctl import threadpool_limits
 
 from .blocks import design, leverage_rows, solve_rows, sse_rows
 from .prior import learn_prior, predictive_sigma2, well_rated
@@ -135,21 +136,11 @@ def objective(data, F, A, lam_user, lam_map, weight, sse=None):
     return total, sse
 
 
-_SINGLE_FROM = 250_000  # ratings from which the Gram products run in single precision
-
-
-def _design(factors, bias, nnz):
-    F = design(factors, bias)
-    # large problems: float32 products halve the memory traffic of the dominant cost;
-    # small ones (and the exactness tests) keep full double precision
-    return F.astype(np.float32) if nnz >= _SINGLE_FROM else F
-
-
 def user_step(data, F: Factors, lam_user, n_jobs=1, with_edf=False, rows=None):
     """Exact minimisation over every user's block (or ``rows`` only), items fixed."""
     ib, ix = F.split(F.item)
     d = F.user.shape[1]
-    z, edf, _ = data.solve("user", _design(ix, ib, data.nnz), _offsets(F, F.item), lam_user * np.eye(d),
+    z, edf, _ = data.solve("user", design(ix, ib), _offsets(F, F.item), lam_user * np.eye(d),
                            None, None, n_jobs, with_edf, rows)
     F.user[slice(None) if rows is None else rows] = z
     return edf
@@ -159,7 +150,7 @@ def item_step(data, F: Factors, A, weight, n_jobs=1, with_edf=False, rows=None):
     """Exact minimisation over every item's block (or ``rows`` only), users and map fixed."""
     ub, ut = F.split(F.user)
     sel = slice(None) if rows is None else rows
-    z, edf, sse = data.solve("item", _design(ut, ub, data.nnz), _offsets(F, F.user), F.P, A[sel] @ F.W,
+    z, edf, sse = data.solve("item", design(ut, ub), _offsets(F, F.user), F.P, A[sel] @ F.W,
                              weight[sel], n_jobs, with_edf, rows)
     F.item[sel] = z
     F.sse = sse  # the data term after this step (a map step leaves it unchanged)
@@ -281,6 +272,14 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
                 P=lam_item * np.eye(d) if P0 is None else np.array(P0, float), biases=biases)
     rated = data.item_counts() > 0
     solver = MapSolver(A[rated], weight[rated], lam_map)
+    # with our own threads, BLAS runs on one: its idle threads would spin against ours
+    with threadpool_limits(1 if n_jobs > 1 else None):
+        _epochs(data, F, A, lam_user, lam_map, weight, rated, solver, epochs, tol, n_jobs, validate, on_epoch)
+    return _finish(data, F, A, lam_user, lam_map, weight, rated, solver, prior, seed, n_jobs, em_rounds,
+                   tune_map)
+
+
+def _epochs(data, F, A, lam_user, lam_map, weight, rated, solver, epochs, tol, n_jobs, validate, on_epoch):
     previous = np.inf
     for epoch in range(1, epochs + 1):
         t0 = time.perf_counter()
@@ -297,6 +296,10 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
         if abs(previous - total) <= tol * abs(total):
             break
         previous = total
+
+
+def _finish(data, F, A, lam_user, lam_map, weight, rated, solver, prior, seed, n_jobs, em_rounds, tune_map):
+    """Degrees of freedom, the noise variances and, with the learned prior, the prior."""
     edf_u = user_step(data, F, lam_user, n_jobs, with_edf=True)
     edf_i = item_step(data, F, A, weight, n_jobs, with_edf=True)
     sse = objective(data, F, A, lam_user, lam_map, weight)[1]

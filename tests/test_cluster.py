@@ -10,8 +10,6 @@ import time
 import numpy as np
 import pandas as pd
 import pytest
-from hypothesis import given, settings
-from hypothesis import strategies as st
 
 distributed = pytest.importorskip("distributed")
 
@@ -255,15 +253,3 @@ def test_every_rating_data_method_matches_the_local_one(cluster):
         assert (there.item_rows(rows) != here.item_rows(rows)).nnz == 0
     finally:
         there.close()
-
-
-@given(st.lists(st.integers(0, 50), min_size=1, max_size=60), st.integers(1, 12))
-@settings(max_examples=200, deadline=None)
-def test_blocks_cover_the_rows_with_balanced_ratings(counts, partitions):
-    from hybrid.cluster import _bounds
-    counts = np.array(counts)
-    blocks = _bounds(counts, partitions)
-    assert blocks[0][0] == 0 and blocks[-1][1] == len(counts) and len(blocks) <= partitions
-    assert all(hi > lo for lo, hi in blocks) and all(a[1] == b[0] for a, b in zip(blocks, blocks[1:]))
-    most = max(counts[lo:hi].sum() for lo, hi in blocks)
-    assert most <= counts.sum() / partitions + counts.max()
