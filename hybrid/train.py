@@ -136,11 +136,22 @@ def objective(data, F, A, lam_user, lam_map, weight, sse=None):
     return total, sse
 
 
+_SINGLE_FROM = 2_000_000  # ratings from which the other side's rows are gathered in single precision
+
+
+def _design(factors, bias, nnz):
+    F = design(factors, bias)
+    # large problems: the gather of the other side's rows is random access into a table
+    # that no longer fits in cache, and float32 halves that traffic; small ones (and the
+    # exactness tests) stay in double precision throughout
+    return F.astype(np.float32) if nnz >= _SINGLE_FROM else F
+
+
 def user_step(data, F: Factors, lam_user, n_jobs=1, with_edf=False, rows=None):
     """Exact minimisation over every user's block (or ``rows`` only), items fixed."""
     ib, ix = F.split(F.item)
     d = F.user.shape[1]
-    z, edf, _ = data.solve("user", design(ix, ib), _offsets(F, F.item), lam_user * np.eye(d),
+    z, edf, _ = data.solve("user", _design(ix, ib, data.nnz), _offsets(F, F.item), lam_user * np.eye(d),
                            None, None, n_jobs, with_edf, rows)
     F.user[slice(None) if rows is None else rows] = z
     return edf
@@ -150,7 +161,7 @@ def item_step(data, F: Factors, A, weight, n_jobs=1, with_edf=False, rows=None):
     """Exact minimisation over every item's block (or ``rows`` only), users and map fixed."""
     ub, ut = F.split(F.user)
     sel = slice(None) if rows is None else rows
-    z, edf, sse = data.solve("item", design(ut, ub), _offsets(F, F.user), F.P, A[sel] @ F.W,
+    z, edf, sse = data.solve("item", _design(ut, ub, data.nnz), _offsets(F, F.user), F.P, A[sel] @ F.W,
                              weight[sel], n_jobs, with_edf, rows)
     F.item[sel] = z
     F.sse = sse  # the data term after this step (a map step leaves it unchanged)
