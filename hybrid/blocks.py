@@ -145,20 +145,24 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
     with threadpool_limits(1):
         n = len(indptr) - 1
         d = F_ext.shape[1]
-        indptr = np.asarray(indptr, np.int64)
         weight = np.ones(n) if weight is None else np.ascontiguousarray(weight, float)
-        prior = np.zeros((n, d)) if prior_mean is None else np.ascontiguousarray(prior_mean, float)
-        z, edf, sse = prior.copy(), np.zeros(n), np.zeros(n)   # unrated rows keep their prior mean
         P = np.ascontiguousarray(P, float)
-        data = (indptr, np.asarray(indices, np.int64), np.asarray(values, float))
+        if prior_mean is None:   # no pass over an all-zero (n, d) table: one zero row serves all
+            z, prior_rhs, stride = np.zeros((n, d)), np.zeros((1, d)), 0
+        else:
+            z = np.array(prior_mean, float, order="C")   # unrated rows keep their prior mean
+            prior_rhs, stride = weight[:, None] * (z @ P.T), 1
+        edf, sse = np.zeros(n), np.zeros(n)
+        # index arrays as they come (int32 or int64: the kernel is compiled for either)
+        data = (np.asarray(indptr), np.asarray(indices), np.asarray(values, float))
         # a constant first column (the bias's intercept) is implied rather than gathered
         # (exact whenever it applies: an implied 1 equals the stored one)
         n_other = len(F_ext) - 1
         intercept = n_other > 0 and F_ext.shape[1] > 0 and bool(np.all(F_ext[:n_other, 0] == 1.0))
         table = _aligned(F_ext[:, 1:] if intercept else F_ext)
-        fixed = (table, intercept, np.ascontiguousarray(y_offset, float), P,
-                 np.ascontiguousarray(weight[:, None] * (prior @ P.T)), weight, with_edf, z, edf, sse)
-        shares = _shares(np.diff(indptr), max(1, int(n_jobs)))
+        fixed = (table, intercept, np.ascontiguousarray(y_offset, float), P, prior_rhs, stride, weight,
+                 with_edf, z, edf, sse)
+        shares = _shares(np.diff(data[0]), max(1, int(n_jobs)))
         if len(shares) > 1:
             with ThreadPoolExecutor(len(shares)) as pool:
                 list(pool.map(lambda rows: _solve_kernel(*data, rows, *fixed), shares))
@@ -168,12 +172,12 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
 
 
 @numba.njit(nogil=True, cache=True)
-def _solve_kernel(indptr, indices, values, rows, table, intercept, y_offset, P, prior_rhs, weight, with_edf,
-                  z_out, edf_out, sse_out):  # pragma: no cover - compiled
+def _solve_kernel(indptr, indices, values, rows, table, intercept, y_offset, P, prior_rhs, stride, weight,
+                  with_edf, z_out, edf_out, sse_out):  # pragma: no cover - compiled
     """Each row of ``rows``: gather its design, ``F^T F`` by one BLAS product, an
     in-place Cholesky factorisation and two triangular solves.  Compiled, with
-    the GIL released, so threads can share the rows; ``prior_rhs`` is each
-    row's ``w P m``.  The design rows are ``[1, table[c]]`` with ``intercept``
+    the GIL released, so threads can share the rows; ``prior_rhs[stride * r]``
+    is row ``r``'s ``w P m``.  The design rows are ``[1, table[c]]`` with ``intercept``
     (the constant column is not stored: fewer cache lines per gathered row)."""
     off = 1 if intercept else 0
     d = table.shape[1] + off
@@ -181,7 +185,7 @@ def _solve_kernel(indptr, indices, values, rows, table, intercept, y_offset, P, 
         s, e = indptr[r], indptr[r + 1]
         T = np.empty((e - s, d))
         y = np.empty(e - s)
-        b = prior_rhs[r].copy()
+        b = prior_rhs[stride * r].copy()
         for j in range(e - s):
             c = indices[s + j]
             y[j] = values[s + j] - y_offset[c]
