@@ -28,8 +28,8 @@ import numba
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-_BUDGET = 1 << 21  # floats in one padded gather: bounds memory per group, and keeps
-                   # groups small enough to share out between threads
+_BUDGET = 1 << 21  # floats in one padded gather (row_grams, leverage_rows): bounds memory
+_CHUNK = _BUDGET // 4  # ratings per pass of sse_rows
 
 
 def design(factors: np.ndarray, bias: np.ndarray | None) -> np.ndarray:
@@ -280,12 +280,12 @@ def sse_rows(indptr, indices, values, rows_z, other_z, biases):
     """
     rows = np.repeat(np.arange(len(indptr) - 1), np.diff(indptr))
     total = 0.0
-    for s in range(0, len(values), _BUDGET // 4):
-        r, c = rows[s:s + _BUDGET // 4], indices[s:s + _BUDGET // 4]
+    for s in range(0, len(values), _CHUNK):
+        r, c = rows[s:s + _CHUNK], indices[s:s + _CHUNK]
         a, b = rows_z[r], other_z[c]
         pred = np.einsum("nk,nk->n", a[:, 1:], b[:, 1:]) + a[:, 0] + b[:, 0] if biases \
             else np.einsum("nk,nk->n", a, b)
-        e = values[s:s + _BUDGET // 4] - pred
+        e = values[s:s + _CHUNK] - pred
         total += float(e @ e)
     return total
 

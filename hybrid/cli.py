@@ -27,7 +27,6 @@ app = typer.Typer(add_completion=False, no_args_is_help=True, rich_markup_mode=N
                        "how many ratings each needs. Scores are estimates.")
 
 
-
 def train_model(ratings: Path, attributes: Path, cfg: dict, quiet: bool = False) -> HybridFactorModel:
     """Read both tables, fit, and keep the settings in the model (shared by train and demo)."""
     from .cluster import engine_client

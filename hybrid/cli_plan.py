@@ -14,7 +14,6 @@ from .errors import InputError
 from .outputs import atomic_path, check_writable
 from .store import load_model
 
-
 CAUTION = ("Ratings are personal data, and a campaign contacts people: ask only customers who agreed "
            "to be asked, honour opt-outs, and follow the data-protection law that applies to you. "
            "Every number here is an estimate.")

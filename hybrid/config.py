@@ -233,4 +233,3 @@ def with_engine(cfg: dict, kind: str | None = None, address: str | None = None,
     _merge(cfg, {"engine": flags}, (), "command line")
     validate(cfg, "command line")
     return cfg
-

@@ -26,6 +26,7 @@ from threadpoolctl import threadpool_limits
 from .blocks import design, leverage_rows, solve_rows, sse_rows
 from .prior import learn_prior, predictive_sigma2, well_rated
 
+
 @dataclass
 class RatingData:
     """Ratings as two CSR copies (by user, by item) of ``r - mu``.

@@ -13,7 +13,7 @@ import pytest
 
 distributed = pytest.importorskip("distributed")
 
-from hybrid import HybridFactorModel, plan  # noqa: E402
+from hybrid import HybridFactorModel, load, plan  # noqa: E402
 from hybrid.cluster import ClusterRatingData  # noqa: E402
 from hybrid.samples import tasting_club  # noqa: E402
 from hybrid.scoring import score_items  # noqa: E402
@@ -175,12 +175,11 @@ def test_commands_run_on_the_cluster_with_the_same_outputs(cluster, tmp_path):
     paths = write_samples(tmp_path, tasting_club(n_members=300, n_lots=60, n_new=5, seed=4))
     cfg = tmp_path / "coffee.toml"
     cfg.write_text(open("configs/coffee.toml").read().replace("epochs = 30", "epochs = 4"))
-    out = {}
     for where, flags in (("here", []), ("there", ["--engine", "dask", "--partitions", "3"])):
         r = run("train", paths["ratings"], paths["lots"], "--config", cfg, "--out", tmp_path / f"{where}.hybrid",
                 "--quiet", *flags)
         assert r.exit_code == 0, r.output
-    here, there = (hybrid_load(tmp_path / f"{w}.hybrid") for w in ("here", "there"))
+    here, there = (load(tmp_path / f"{w}.hybrid") for w in ("here", "there"))
     _assert_same_model(here, there)
     assert there.engine == "dask" and there.address is None   # the started cluster is gone
     for where, flags in (("here", []), ("there", ["--address", c.scheduler_address])):
@@ -198,10 +197,6 @@ def test_commands_run_on_the_cluster_with_the_same_outputs(cluster, tmp_path):
     assert r.exit_code == 2 and "cannot reach the Dask scheduler" in r.stderr, r.output
     assert len(r.stderr.strip().splitlines()) == 1
 
-
-def hybrid_load(path):
-    from hybrid import load
-    return load(path)
 
 
 def test_the_local_engine_needs_no_dask():
