@@ -8,7 +8,7 @@ import pandas as pd
 import typer
 
 from .config import load_config, model_params, settings_for, with_engine
-from .data import read_attributes, read_ratings
+from .data import read_attributes, read_item_list, read_ratings
 from .display import ADDRESS_HELP, ENGINE_HELP, check_format, emit, emit_mapping, say
 from .errors import InputError
 from .outputs import atomic_path, check_writable
@@ -43,6 +43,7 @@ def plan_command(
         priority: Optional[str] = typer.Option(None, "--priority", help="Attribute column of item priority."),
         aim: Optional[str] = typer.Option(None, "--aim", help="reach (items to target) or gain (total stability)."),
         new_items: Optional[Path] = typer.Option(None, "--new-items", help="Attribute table of unrated items to include."),
+        only: Optional[Path] = typer.Option(None, "--items", help="Plan only the items in this table's item column."),
         config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
         engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
         address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
@@ -66,13 +67,14 @@ def plan_command(
     cfg = settings_for(model, config)
     if new_items is not None:
         model.add_items(read_attributes(new_items, cfg, model.features_._spec(), require_all=False))
+    chosen = None if only is None else read_item_list(only, cfg, model.item_ids_)
     p = cfg["plan"]
     with engine_client(with_engine(load_config(config), engine, address)) as client:
         result = plan(model, target=p["target"] if target is None else target, k=p["k"] if k is None else k,
                       budget=budget, per_user=per_user, priority=priority, seed=p["seed"], draws=p["draws"],
                       max_needed=p["max_needed"], aim=p["aim"] if aim is None else aim, per_item=per_item,
                       responders=p["responders"], responder_threshold=p["responder_threshold"] or None,
-                      pool_min_ratings=p["pool_min_ratings"], client=client)
+                      pool_min_ratings=p["pool_min_ratings"], items=chosen, client=client)
     write_table(result.items, out)
     if asks is not None:
         write_table(result.asks, asks)

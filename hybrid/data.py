@@ -274,6 +274,19 @@ def read_attributes(path: str | Path, cfg: dict, schema: dict, *, require_all: b
                                require_all=require_all)
 
 
+def read_item_list(path: str | Path, cfg: dict, known) -> list:
+    """The item ids in a table's item column (the ``[attributes]`` id), each known to the model."""
+    a = cfg["attributes"]
+    df = read_table(path, [a["id"]], delimiter=a["delimiter"], text_columns=[a["id"]])
+    row_base = 1 if Path(path).suffix.lower() in (".parquet", ".pq") else 2
+    ids = id_strings(df[a["id"]], str(path), a["id"], row_base)
+    unknown = np.flatnonzero(~ids.isin(known).to_numpy())
+    if unknown.size:
+        raise InputError(f"item '{ids.iloc[unknown[0]]}' is not in the model (new items need --new-items)",
+                         file=str(path), row=int(unknown[0]) + row_base, column=a["id"])
+    return ids.tolist()
+
+
 def check_items_described(ratings: pd.DataFrame, attributes: pd.DataFrame,
                           source: str = "ratings", row_base: int = 1) -> None:
     """Every rated item must have an attribute row."""

@@ -22,6 +22,8 @@ from .posterior import covariances, item_grams, stability, vector_part
 GRID = np.array([0, 1, 2, 3, 5, 8, 12, 20, 30, 50, 80, 120, 200, 300, 500])
 STATUS = ("no ratings yet", "under-covered", "trusted")
 _ITEMS_PER_BLOCK = 256
+FIRST_DRAWS = 16    # draws that may settle a comparison with the target on their own
+_SE_FLOOR = 0.025   # a run of equal overlaps is not certainty
 
 
 @dataclass
@@ -118,8 +120,9 @@ class Assessor:
         scores = next(self.model.score_blocks(z, chunk=len(z)))[1]
         return responder_moment(self.model, "likely", scores, self.threshold)
 
-    def at(self, items, extra):
-        """(stability, se) of ``items`` after ``extra`` more ratings each (array or scalar)."""
+    def at(self, items, extra, draws=slice(None)):
+        """(stability, se) of ``items`` after ``extra`` more ratings each (array or scalar),
+        from all the draws or the ``draws`` slice of them."""
         items = np.asarray(items)
         extra = np.broadcast_to(np.asarray(extra, float), items.shape)
         mean, se = np.empty(len(items)), np.empty(len(items))
@@ -128,8 +131,8 @@ class Assessor:
             more = extra[s:s + _ITEMS_PER_BLOCK, None, None] * self.extra_moment(blk)
             cov = covariances(self.model, self.grams[blk], self.weight[blk], more)
             mean[s:s + len(blk)], se[s:s + len(blk)] = stability(
-                self.vectors[blk], _chol(self.model, cov), self.vectors[self.pool], self.k, self.eps,
-                exclude=self.pool_pos[blk])
+                self.vectors[blk], _chol(self.model, cov), self.vectors[self.pool], self.k, self.eps[draws],
+                exclude=self.pool_pos[blk], n_jobs=self.model.n_jobs)
         return mean, se
 
 
@@ -151,19 +154,39 @@ class ClusterAssessor:
     def __getattr__(self, name):
         return getattr(self.local, name)
 
-    def at(self, items, extra):
+    def at(self, items, extra, draws=slice(None)):
         from .cluster import map_chunks
         items = np.asarray(items)
         extra = np.broadcast_to(np.asarray(extra, float), items.shape)
-        chunks = ((items[s:s + self.step], extra[s:s + self.step]) for s in range(0, len(items), self.step))
+        chunks = ((items[s:s + self.step], extra[s:s + self.step], draws) for s in range(0, len(items), self.step))
         parts = list(map_chunks(self.client, _assess, self.shared, chunks, window=1 << 30))
         if not parts:
             return np.empty(0), np.empty(0)
         return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
 
 
-def _assess(assessor, items, extra):
-    return assessor.at(items, extra)
+def _assess(assessor, items, extra, draws):
+    return assessor.at(items, extra, draws)
+
+
+def settle(assessor, items, extra, target):
+    """Stability of ``items`` after ``extra`` ratings, as far as comparing it with ``target`` needs.
+
+    A sequential estimate: the first :data:`FIRST_DRAWS` draws decide for every
+    item whose estimate is more than three standard errors (at least
+    :data:`_SE_FLOOR`) from the target; only the others take the remaining
+    draws, and their estimate is then the one all the draws give.
+    """
+    items = np.asarray(items)
+    extra = np.broadcast_to(np.asarray(extra, float), items.shape)
+    S = len(assessor.eps)
+    first = min(S, FIRST_DRAWS)
+    value, se = assessor.at(items, extra, slice(0, first))
+    unsure = np.flatnonzero(np.abs(value - target) < 3 * np.maximum(se, _SE_FLOOR))
+    if first < S and unsure.size:
+        rest = assessor.at(items[unsure], extra[unsure], slice(first, S))[0]
+        value[unsure] = (first * value[unsure] + (S - first) * rest) / S
+    return value
 
 
 def ratings_needed(assessor, items, now, target, max_needed, grid=GRID, curves=True):
@@ -172,7 +195,8 @@ def ratings_needed(assessor, items, now, target, max_needed, grid=GRID, curves=T
     Only items below the target are evaluated.  With ``curves`` the stability of
     each is found on the whole grid (the budget's ``gain`` aim needs it);
     without, only at ``max_needed``, and the answer is then found by bisection
-    (about log2(max_needed) evaluations instead of the grid's).
+    (about log2(max_needed) evaluations instead of the grid's).  Comparisons
+    with the target off the grid use sequential estimates (:func:`settle`).
     Returns (curves (m, G), needed (m,) float with NaN for "more than max_needed", grid).
     """
     grid = grid[grid <= max_needed]
@@ -183,7 +207,7 @@ def ratings_needed(assessor, items, now, target, max_needed, grid=GRID, curves=T
     for j, n in enumerate(grid[1:], start=1):
         live = open_[out[open_, j - 1] < 0.999]   # a settled curve stays settled
         if live.size:
-            out[live, j] = assessor.at(items[live], n)[0]
+            out[live, j] = assessor.at(items[live], n)[0] if curves else settle(assessor, items[live], n, target)
     needed = np.full(len(items), np.nan)
     needed[now >= target] = 0
     reach = out >= target
@@ -194,7 +218,7 @@ def ratings_needed(assessor, items, now, target, max_needed, grid=GRID, curves=T
         mid = np.floor((lo + hi) / 2)
         unsure = hi - lo > 1
         val = np.full(len(todo), -np.inf)
-        val[unsure] = assessor.at(items[todo[unsure]], mid[unsure])[0]
+        val[unsure] = settle(assessor, items[todo[unsure]], mid[unsure], target)
         ok = val >= target
         hi = np.where(unsure & ok, mid, hi)
         lo = np.where(unsure & ~ok, mid, lo)
@@ -225,7 +249,7 @@ def priority_weights(model, column):
 
 def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, seed=0, *,
          draws=64, max_needed=200, aim="reach", per_item=None, responders="active",
-         responder_threshold=None, pool_min_ratings=20, client=None) -> Plan:
+         responder_threshold=None, pool_min_ratings=20, items=None, client=None) -> Plan:
     """Assess every item and, given a budget, plan a sampling campaign.
 
     Parameters
@@ -247,6 +271,9 @@ def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, see
         Maximise the (weighted) number of items reaching the target, or the total gain.
     per_item : int, optional
         Most ratings planned for one item.
+    items : list of str, optional
+        Assess and plan only these items (a launch batch, say); the neighbour
+        candidates are still all the catalogue's trusted items.
     client : distributed.Client, optional
         Evaluate the items' stability on this Dask cluster (same results).
 
@@ -276,13 +303,13 @@ def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, see
     A = Assessor(model, k, draws, seed, pool_min_ratings, responders, threshold)
     if client is not None:
         A = ClusterAssessor(A, client)
-    items = np.arange(len(model.item_ids_))
-    now, se = A.at(items, 0.0)
-    curves, needed, grid = ratings_needed(A, items, now, target, max_needed, curves=(aim == "gain"))
-    counts = model.item_counts_
+    chosen = _chosen(model, items)
+    now, se = A.at(chosen, 0.0)
+    curves, needed, grid = ratings_needed(A, chosen, now, target, max_needed, curves=(aim == "gain"))
+    counts = model.item_counts_[chosen]
     status = np.where(counts == 0, STATUS[0], np.where(now >= target, STATUS[2], STATUS[1]))
-    weights = priority_weights(model, priority)
-    planned = np.zeros(len(items), dtype=np.int64)
+    weights = priority_weights(model, priority)[chosen]
+    planned = np.zeros(len(chosen), dtype=np.int64)
     open_items = now < target
     if budget:
         cap = np.inf if per_item is None else per_item
@@ -294,13 +321,13 @@ def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, see
                                     budget, per_item)
     reaches = (now >= target) | ((planned > 0) & np.isfinite(needed) & (planned >= needed))
     table = pd.DataFrame({
-        "item": model.item_ids_, "status": status, "ratings": counts, "stability": now,
+        "item": model.item_ids_[chosen], "status": status, "ratings": counts, "stability": now,
         "stability_se": se, "needed": pd.array(np.where(np.isfinite(needed), needed, np.nan)).astype("Int64"),
         "needed_label": [f"{int(n)}" if np.isfinite(n) else f"more than {int(grid[-1])}" for n in needed],
         "planned": planned, "reaches_target": reaches, "priority": weights,
-        "in_pool": np.isin(items, A.pool), "relative_variance": A.relative_variance})
-    asks = _asks(model, A, planned, weights, per_user) if budget else asks_table([])
-    curve_frame = pd.DataFrame(curves, index=pd.Index(model.item_ids_, name="item"),
+        "in_pool": np.isin(chosen, A.pool), "relative_variance": A.relative_variance[chosen]})
+    asks = _asks(model, A, chosen, planned, weights, per_user) if budget else asks_table([])
+    curve_frame = pd.DataFrame(curves, index=pd.Index(model.item_ids_[chosen], name="item"),
                                columns=[int(g) for g in grid])
     settings = {"target": target, "k": k, "budget": budget, "per_user": per_user, "priority": priority,
                 "seed": seed, "draws": draws, "aim": aim, "pool_size": int(len(A.pool)), "pool_rule": A.pool_rule,
@@ -308,7 +335,19 @@ def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, see
     return Plan(table, asks, curve_frame, settings)
 
 
-def _asks(model, A: Assessor, planned, weights, per_user):
+def _chosen(model, items):
+    """Indices of the items to plan (all, or the named ones, each once, in the order given)."""
+    if items is None:
+        return np.arange(len(model.item_ids_))
+    names = pd.unique(np.atleast_1d(np.asarray(items, dtype=str)))
+    where = pd.Index(model.item_ids_).get_indexer(names)
+    if (where < 0).any():
+        raise InputError(f"item '{names[np.argmax(where < 0)]}' is not in the model "
+                         "(add unrated items with their attributes first)")
+    return where
+
+
+def _asks(model, A: Assessor, chosen, planned, weights, per_user):
     """Whom to ask for every planned item, most important items first."""
     B = _user_design(model)
     weight = propensity(model.user_counts_)
@@ -317,10 +356,11 @@ def _asks(model, A: Assessor, planned, weights, per_user):
     rows = []
     order = np.flatnonzero(planned > 0)
     order = order[np.lexsort((planned[order], -weights[order]))]
-    for i in order:
+    for j in order:
+        i = chosen[j]
         eligible = np.ones(len(B), bool)
         eligible[R.indices[R.indptr[i]:R.indptr[i + 1]]] = False
-        users, gains, _ = choose_askees(B, A.cov_now[i], model.sigma2_new_, int(planned[i]), eligible, weight, left)
+        users, gains, _ = choose_askees(B, A.cov_now[i], model.sigma2_new_, int(planned[j]), eligible, weight, left)
         if users:
             expected = model.clip(model._combine(model.user_blocks_[users],
                                                  np.repeat(model.item_blocks_[[i]], len(users), 0)))

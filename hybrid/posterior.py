@@ -17,11 +17,18 @@ current list that a draw from the posterior keeps in its own top k.
 """
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
+
+import numba
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from .blocks import design, row_grams
 
-_BUDGET = 1 << 22  # floats in one block of draw x candidate distances
+# a tile of draw x candidate distances (256 x 2048 floats, 2 MB) stays in a core's cache
+_DRAWS_PER_TILE = 256
+_POOL_PER_TILE = 2048
+_PROBE = 8          # draws that try the shortlist before the rest of an item's do
 
 
 def item_grams(model, rows=None):
@@ -63,7 +70,7 @@ def _sq(X):
     return np.einsum("...i,...i->...", X, X)
 
 
-def stability(means, chol, pool, k, eps, exclude=None, shortlist=256):
+def stability(means, chol, pool, k, eps, exclude=None, shortlist=256, n_jobs=1):
     """Expected overlap of each item's top-k list with the lists of its posterior draws.
 
     Parameters
@@ -116,34 +123,103 @@ def stability(means, chol, pool, k, eps, exclude=None, shortlist=256):
     radius = np.sqrt(np.maximum(Ds[:, -1], 0.0)) if M < n else np.full(b, np.inf)
     offsets = draws_for(chol, eps)                          # (b, S, r)
     X = means[:, None, :] + offsets
-    Cs = pool[short]                                        # (b, M, r)
-    DT = _sq(X)[..., None] + c2[short][:, None, :] - 2.0 * X @ Cs.transpose(0, 2, 1)
-    self_in = short == exclude[:, None]
-    DT = np.where(self_in[:, None, :], np.inf, DT)
-    kth = np.partition(DT, k - 1, axis=2)[..., k - 1]       # (b, S)
-    overlap = (DT[..., :k] <= kth[..., None]).sum(-1) / k
-    exact = np.sqrt(np.maximum(kth, 0.0)) <= radius[:, None] - np.sqrt(_sq(offsets))
+    spread = np.sqrt(_sq(offsets))                          # (b, S)
+    overlap, exact = np.zeros(spread.shape), np.zeros(spread.shape, bool)
+    # a draw farther from the mean than the shortlist's radius can never be certified
+    # there; of the other items, those none of whose first draws is certified (loose
+    # posteriors) go straight to the whole pool
+    hope = np.flatnonzero((spread < radius[:, None]).any(1))
+    probe = min(_PROBE, len(eps))
+    for draws in (slice(0, probe), slice(probe, None)):
+        if hope.size and draws.start < len(eps):
+            got, ok = _on_shortlist(X[hope, draws], short[hope], pool, c2, exclude[hope], k,
+                                    radius[hope, None] - spread[hope, draws])
+            overlap[hope, draws], exact[hope, draws] = got, ok
+            hope = hope[ok.any(1)]
     if not exact.all():
         bi, si = np.nonzero(~exact)
-        overlap[bi, si] = _full_pool(X[bi, si], pool, c2, listed[bi], exclude[bi], k)
+        overlap[bi, si] = _full_pool(X[bi, si], pool, c2, listed[bi], exclude[bi], k, n_jobs)
     S = eps.shape[0]
     return overlap.mean(1), overlap.std(1, ddof=1) / np.sqrt(S) if S > 1 else np.zeros(b)
 
 
-def _full_pool(X, pool, c2, listed, exclude, k):
-    """Overlap for single draws against the whole pool, in bounded blocks."""
+def _on_shortlist(X, short, pool, c2, exclude, k, room):
+    """Overlap of draws ``X`` (h, s, r) on their items' shortlists, and whether each is exact
+    (its k-th distance within ``room``, the shortlist radius less the draw's offset)."""
+    DT = _sq(X)[..., None] + c2[short][:, None, :] - 2.0 * X @ pool[short].transpose(0, 2, 1)
+    DT = np.where((short == exclude[:, None])[:, None, :], np.inf, DT)
+    kth = np.partition(DT, k - 1, axis=2)[..., k - 1]   # (h, s)
+    return (DT[..., :k] <= kth[..., None]).sum(-1) / k, np.sqrt(np.maximum(kth, 0.0)) <= room
+
+
+def _full_pool(X, pool, c2, listed, exclude, k, n_jobs=1):
+    """Overlap for single draws against the whole pool.
+
+    One pass per block of draws: single-precision distance tiles from BLAS
+    (ranks only need the order of distances), each folded at once into the
+    draws' running top-k by a compiled loop, so no draw x pool table is ever
+    held.  Threads share the draws.
+    """
     out = np.empty(len(X))
-    step = max(1, _BUDGET // len(pool))
-    # single precision for the big block: ranks only need the order of distances
-    pool32, c232 = pool.astype(np.float32), c2.astype(np.float32)
-    for s in range(0, len(X), step):
-        x = X[s:s + step].astype(np.float32)
-        D = _sq(x)[:, None] + c232[None, :] - 2.0 * x @ pool32.T
-        ex = exclude[s:s + step]
-        rows = np.flatnonzero(ex >= 0)
-        D[rows, ex[rows]] = np.inf
-        kth = np.partition(D, k - 1, axis=1)[:, k - 1]
-        out[s:s + step] = (np.take_along_axis(D, listed[s:s + step], 1) <= kth[:, None]).sum(1) / k
+    pool32 = np.ascontiguousarray(pool, np.float32)
+    c232 = np.ascontiguousarray(c2, np.float32)
+    listed, exclude = np.ascontiguousarray(listed, np.int64), np.ascontiguousarray(exclude, np.int64)
+
+    def run(rows):
+        for s in range(rows.start, rows.stop, _DRAWS_PER_TILE):
+            part = slice(s, min(s + _DRAWS_PER_TILE, rows.stop))
+            x = X[part].astype(np.float32) * np.float32(-2.0)
+            top_d = np.full((len(x), k), np.inf, np.float32)
+            top_i = np.full((len(x), k), -1, np.int64)
+            for j in range(0, len(pool32), _POOL_PER_TILE):
+                tile = x @ pool32[j:j + _POOL_PER_TILE].T
+                tile += c232[j:j + _POOL_PER_TILE]
+                _fold_tile(tile, j, exclude[part], top_d, top_i)
+            out[part] = _shared(top_i, listed[part]) / k
+
+    edges = np.linspace(0, len(X), max(1, min(int(n_jobs), len(X) // _DRAWS_PER_TILE + 1)) + 1).astype(int)
+    shares = [slice(a, b) for a, b in zip(edges[:-1], edges[1:])]
+    # BLAS on one thread: our threads share the draws (idle BLAS threads would spin against them)
+    with threadpool_limits(1):
+        if len(shares) > 1:
+            with ThreadPoolExecutor(len(shares)) as workers:
+                list(workers.map(run, shares))
+        else:
+            run(shares[0])
+    return out
+
+
+@numba.njit(nogil=True, cache=True)
+def _fold_tile(tile, first, exclude, top_d, top_i):  # pragma: no cover - compiled
+    """Fold a tile of distances (draws x candidates ``first``...) into each draw's sorted top k."""
+    m, w = tile.shape
+    k = top_d.shape[1]
+    for i in range(m):
+        worst = top_d[i, k - 1]
+        skip = exclude[i] - first
+        for t in range(w):
+            v = tile[i, t]
+            if v < worst and t != skip:
+                s = k - 1
+                while s > 0 and top_d[i, s - 1] > v:
+                    top_d[i, s] = top_d[i, s - 1]
+                    top_i[i, s] = top_i[i, s - 1]
+                    s -= 1
+                top_d[i, s] = v
+                top_i[i, s] = first + t
+                worst = top_d[i, k - 1]
+
+
+@numba.njit(nogil=True, cache=True)
+def _shared(a, b):  # pragma: no cover - compiled
+    """Row-wise number of entries of ``a`` found in ``b``."""
+    out = np.zeros(a.shape[0])
+    for i in range(a.shape[0]):
+        for p in range(a.shape[1]):
+            for q in range(b.shape[1]):
+                if a[i, p] == b[i, q]:
+                    out[i] += 1
+                    break
     return out
 
 

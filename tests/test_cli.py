@@ -195,6 +195,21 @@ def test_plan_writes_plan_and_asks(files, tmp_path):
     assert pd.DataFrame(lines).groupby("user").size().max() <= 2
 
 
+def test_plan_only_some_items(files, tmp_path):
+    out = tmp_path / "plan.csv"
+    result = run("plan", files["model"], "--new-items", files["new_lots"], "--items", files["new_lots"],
+                 "--out", out, "--format", "json")
+    assert result.exit_code == 0, result.output
+    table = pd.read_csv(out)
+    new_ids = pd.read_csv(files["new_lots"]).iloc[:, 0].astype(str).tolist()
+    assert table["item"].tolist() == new_ids and (table["status"] == "no ratings yet").all()
+    listed = tmp_path / "launch.csv"
+    listed.write_text("lot\nL0003\nL9999\n")
+    one_line_error(run("plan", files["model"], "--items", listed, "--out", tmp_path / "p2.csv"),
+                   "item 'L9999' is not in the model")
+    assert not (tmp_path / "p2.csv").exists()
+
+
 def test_plan_help_carries_the_cautions():
     text = run("plan", "--help").stdout
     for phrase in ("personal data", "opt-outs", "data-protection law", "estimate"):

@@ -7,7 +7,8 @@ from sklearn.linear_model import Ridge
 
 from hybrid import HybridFactorModel
 from hybrid.campaign import allocate_gain, allocate_reach, choose_askees, exact_allocation
-from hybrid.planner import Assessor, plan
+from hybrid.errors import InputError
+from hybrid.planner import FIRST_DRAWS, Assessor, plan, settle
 from hybrid.posterior import covariances, item_grams, stability
 
 
@@ -152,11 +153,41 @@ def test_ratings_needed_reaches_the_target_and_one_less_does_not(club):
     rows = p.items[p.items["needed"].notna() & (p.items["needed"] > 1)].head(6)
     idx = pd.Index(m.item_ids_).get_indexer(rows["item"])
     need = rows["needed"].to_numpy(int)
-    at, _ = A.at(idx, need)
-    before, _ = A.at(idx, need - 1)
-    assert (at >= 0.8).all() and (before < 0.8).all()
+    # comparisons with the target use the planner's sequential estimate
+    assert (settle(A, idx, need, 0.8) >= 0.8).all() and (settle(A, idx, need - 1, 0.8) < 0.8).all()
     far = p.items[p.items["needed"].isna()]
     assert (far["needed_label"] == "more than 200").all()
+
+
+def test_sequential_estimate_agrees_with_all_draws(club):
+    m = HybridFactorModel(rank=4, epochs=10, schema=club.schema, text_min_df=1).fit(club.ratings, club.lots)
+    A = Assessor(m, k=5, draws=64, seed=0)
+    items = np.arange(len(m.item_ids_))
+    took_all = 0
+    for n in (0, 3, 12, 40):
+        full = A.at(items, n)[0]
+        quick = settle(A, items, n, 0.8)
+        head, se = A.at(items, n, slice(0, FIRST_DRAWS))
+        unsure = np.abs(head - 0.8) < 3 * np.maximum(se, 0.025)
+        assert np.allclose(quick[unsure], full[unsure], atol=1e-12)     # all 64 draws
+        assert np.array_equal(quick[~unsure], head[~unsure])            # the first 16 settled it
+        assert np.mean((quick >= 0.8) == (full >= 0.8)) >= 0.98
+        took_all += unsure.sum()
+    assert 0 < took_all < 4 * len(items)
+
+
+def test_planning_some_items_matches_planning_all(club):
+    m = HybridFactorModel(rank=4, epochs=10, schema=club.schema, text_min_df=1).fit(club.ratings, club.lots)
+    whole = plan(m, k=5, draws=32, budget=40).items.set_index("item")
+    few = m.item_ids_[[7, 3, 40, 3]]                       # in any order, a repeat counted once
+    part = plan(m, k=5, draws=32, budget=40, items=few)
+    assert part.items["item"].tolist() == [few[0], few[1], few[2]]
+    same = whole.loc[part.items["item"]]
+    for column in ("status", "ratings", "stability", "needed", "in_pool"):
+        assert part.items[column].tolist() == same[column].tolist(), column
+    assert set(part.asks["item"]) <= set(few) and part.items["planned"].sum() <= 40
+    with pytest.raises(InputError, match="item 'NOPE' is not in the model"):
+        plan(m, k=5, draws=8, items=["NOPE"])
 
 
 def test_likely_responders_work_for_a_library_model(club):
