@@ -115,8 +115,11 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
         Shared prior precision (``lam * I`` for an isotropic prior).
     prior_mean : ndarray (n_rows, d), optional
         Zero when absent.
-    weight : ndarray (n_rows,), optional
-        Per-row multiplier of the prior term; ones when absent.
+    weight : ndarray (n_rows,) or (n_rows, d), optional
+        Per-row multiplier of the prior term; ones when absent.  Per
+        coordinate (``(n_rows, d)``), row ``r``'s prior precision is
+        ``diag(s) P diag(s)`` with ``s = sqrt(weight[r])``: the prior's spread
+        along each coordinate divided by ``s``.
     n_jobs : int
         Threads sharing the rows (the compiled row solver releases the GIL).
     with_edf : bool
@@ -145,13 +148,13 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
     with threadpool_limits(1):
         n = len(indptr) - 1
         d = F_ext.shape[1]
-        weight = np.ones(n) if weight is None else np.ascontiguousarray(weight, float)
         P = np.ascontiguousarray(P, float)
+        scale, s_stride = prior_scale(weight, n, d)
         if prior_mean is None:   # no pass over an all-zero (n, d) table: one zero row serves all
             z, prior_rhs, stride = np.zeros((n, d)), np.zeros((1, d)), 0
         else:
             z = np.array(prior_mean, float, order="C")   # unrated rows keep their prior mean
-            prior_rhs, stride = weight[:, None] * (z @ P.T), 1
+            prior_rhs, stride = scale * ((scale * z) @ P.T), 1
         edf, sse = np.zeros(n), np.zeros(n)
         # index arrays as they come (int32 or int64: the kernel is compiled for either)
         data = (np.asarray(indptr), np.asarray(indices), np.asarray(values, float))
@@ -160,8 +163,8 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
         n_other = len(F_ext) - 1
         intercept = n_other > 0 and F_ext.shape[1] > 0 and bool(np.all(F_ext[:n_other, 0] == 1.0))
         table = _aligned(F_ext[:, 1:] if intercept else F_ext)
-        fixed = (table, intercept, np.ascontiguousarray(y_offset, float), P, prior_rhs, stride, weight,
-                 with_edf, z, edf, sse)
+        fixed = (table, intercept, np.ascontiguousarray(y_offset, float), P, prior_rhs, stride, scale,
+                 s_stride, with_edf, z, edf, sse)
         shares = _shares(np.diff(data[0]), max(1, int(n_jobs)))
         if len(shares) > 1:
             with ThreadPoolExecutor(len(shares)) as pool:
@@ -172,12 +175,12 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
 
 
 @numba.njit(nogil=True, cache=True)
-def _solve_kernel(indptr, indices, values, rows, table, intercept, y_offset, P, prior_rhs, stride, weight,
-                  with_edf, z_out, edf_out, sse_out):  # pragma: no cover - compiled
+def _solve_kernel(indptr, indices, values, rows, table, intercept, y_offset, P, prior_rhs, stride, scale,
+                  s_stride, with_edf, z_out, edf_out, sse_out):  # pragma: no cover - compiled
     """Each row of ``rows``: gather its design, ``F^T F`` by one BLAS product, an
     in-place Cholesky factorisation and two triangular solves.  Compiled, with
     the GIL released, so threads can share the rows; ``prior_rhs[stride * r]``
-    is row ``r``'s ``w P m``.  The design rows are ``[1, table[c]]`` with ``intercept``
+    is row ``r``'s ``S P S m`` and ``scale[s_stride * r]`` its ``diag(S)``.  The design rows are ``[1, table[c]]`` with ``intercept``
     (the constant column is not stored: fewer cache lines per gathered row)."""
     off = 1 if intercept else 0
     d = table.shape[1] + off
@@ -196,9 +199,10 @@ def _solve_kernel(indptr, indices, values, rows, table, intercept, y_offset, P, 
                 T[j, a] = table[c, a - off]
                 b[a] += y[j] * T[j, a]
         A = T.T @ T
+        sc = scale[s_stride * r]
         for a in range(d):
             for c in range(d):
-                A[a, c] += weight[r] * P[a, c]
+                A[a, c] += sc[a] * P[a, c] * sc[c]
         _cholesky(A)
         z = _cho_solve(A, b)
         sse = 0.0
@@ -209,11 +213,11 @@ def _solve_kernel(indptr, indices, values, rows, table, intercept, y_offset, P, 
             sse += (y[j] - fit) ** 2
         sse_out[r] = sse
         z_out[r] = z
-        if with_edf:  # trace(F^T F A^-1) = d - w trace(P A^-1): the ridge fit's degrees of freedom
+        if with_edf:  # trace(F^T F A^-1) = d - trace(S P S A^-1): the ridge fit's degrees of freedom
             tr = 0.0
             for j in range(d):
-                tr += _cho_solve(A, P[:, j].copy())[j]
-            edf_out[r] = d - weight[r] * tr
+                tr += _cho_solve(A, sc * P[:, j] * sc[j])[j]
+            edf_out[r] = d - tr
 
 
 @numba.njit(nogil=True, cache=True)
@@ -248,6 +252,16 @@ def _cho_solve(L, b):  # pragma: no cover - compiled
             x -= L[t, k] * b[t]
         b[k] = x / L[k, k]
     return b
+
+
+def prior_scale(weight, n, d):
+    """``(scale, stride)``: the square roots of per-row (or per-row, per-coordinate)
+    prior weights as an ``(n, d)`` table, or one row of ones (stride 0) when absent."""
+    if weight is None:
+        return np.ones((1, d)), 0
+    w = np.asarray(weight, float)
+    w = np.broadcast_to(w[:, None] if w.ndim == 1 else w, (n, d))
+    return np.ascontiguousarray(np.sqrt(w)), 1
 
 
 def _aligned(a):

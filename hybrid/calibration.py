@@ -15,7 +15,7 @@ import pandas as pd
 from .blocks import design, row_grams, solve_rows
 from .model import HybridFactorModel
 from .planner import Assessor, _chol
-from .posterior import overlap_of_lists, stability
+from .posterior import overlap_of_lists, scaled, stability
 from .related import nearest
 
 NS = (0, 2, 5, 10, 20, 40)
@@ -46,7 +46,7 @@ def _solve_probes(model, A_probe, indptr, idx, vals):
     z, _, _ = solve_rows(indptr, idx, vals, Fe, offset, P, np.asarray(A_probe @ F.W), weight)
     grams = row_grams(indptr, idx, vals, Fe, offset)[0]
     # no rater saw these ratings: they count with the variance of a new rating
-    cov = model.sigma2_new_ * np.linalg.inv(grams + weight[:, None, None] * P)
+    cov = model.sigma2_new_ * np.linalg.inv(grams + scaled(P, weight))
     return z, cov
 
 

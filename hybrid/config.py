@@ -177,7 +177,7 @@ def validate(cfg: dict, source: str) -> None:
          "model.lam_map", "a number > 0 or 'auto'"),
         (isinstance(m["epochs"], int) and m["epochs"] >= 1, "model.epochs", "a whole number >= 1"),
         (m["prior"] in ("fixed", "learned"), "model.prior", "'fixed' or 'learned'"),
-        (m["map_weighting"] in ("none", "precision"), "model.map_weighting", "'none' or 'precision'"),
+        (m["map_weighting"] in ("none", "precision", "bias"), "model.map_weighting", "'none', 'precision' or 'bias'"),
         (0 <= m["holdout"] < 1, "model.holdout", "a fraction in [0, 1)"),
         (cfg["ratings"]["duplicates"] in ("error", "last"), "ratings.duplicates", "'error' or 'last'"),
         (len(cfg["ratings"]["scale"]) == 2 and cfg["ratings"]["scale"][0] < cfg["ratings"]["scale"][1],

@@ -43,13 +43,18 @@ class HybridFactorModel:
     prior : {'learned', 'fixed'}
         ``'learned'`` re-estimates the item prior covariance by EM between
         epochs; ``'fixed'`` keeps ``lam_item * I``.
-    map_weighting : {'none', 'precision'}
+    map_weighting : {'none', 'precision', 'bias'}
         ``'precision'`` weights each item's prior term, and so its pull on the
         map, by ``n / (n + weight_half)`` for an item with ``n`` ratings: items
         whose ratings barely determine them (often unlike the items a new one
-        will be compared with) pull the map less.
+        will be compared with) pull the map less.  ``'bias'`` weights only the
+        bias coordinate's prior, by ``1 + n / weight_half``, so the bias part of
+        the map follows the items in proportion to their ratings (what a new
+        item's future ratings will average) while the vectors, which the planner
+        reads, keep one prior; the prior then couples no bias with a vector.
     weight_half : float
-        The rating count at which an item weighs half, with ``'precision'``.
+        With ``'precision'`` the rating count at which an item weighs half; with
+        ``'bias'`` the count that adds one to the bias weight.
     holdout : float
         Fraction of ratings kept aside to report validation RMSE per epoch.
     biases : bool
@@ -124,8 +129,10 @@ class HybridFactorModel:
             raise InputError(f"rank must be a whole number >= 1, found {self.rank!r}")
         if self.prior not in ("learned", "fixed"):
             raise InputError(f"prior must be 'learned' or 'fixed', found {self.prior!r}")
-        if self.map_weighting not in ("none", "precision"):
-            raise InputError(f"map_weighting must be 'none' or 'precision', found {self.map_weighting!r}")
+        if self.map_weighting not in ("none", "precision", "bias"):
+            raise InputError(f"map_weighting must be 'none', 'precision' or 'bias', found {self.map_weighting!r}")
+        if self.map_weighting == "bias" and not self.biases:
+            raise InputError("map_weighting 'bias' needs biases = true")
         if not 0 <= self.holdout < 1:
             raise InputError(f"holdout must be in [0, 1), found {self.holdout!r}")
         if self.engine not in ("local", "dask"):
@@ -225,6 +232,10 @@ class HybridFactorModel:
         counts = np.asarray(counts, float)
         if self.map_weighting == "none":
             return np.ones(len(counts))
+        if self.map_weighting == "bias":   # (n, d): the bias coordinate's weight, ones elsewhere
+            weight = np.ones((len(counts), self.rank + 1))
+            weight[:, 0] = 1.0 + counts / self.weight_half
+            return weight
         # poorly rated items pull the map less (they are a selected, unlike set:
         # rarely rated products are rated lower), and no weight is zero.  An item
         # with no ratings takes no part in the map fit, so its weight only sets its

@@ -17,7 +17,7 @@ import pandas as pd
 
 from .campaign import (AIMS, allocate_gain, allocate_reach, asks_table, choose_askees, propensity)
 from .errors import InputError
-from .posterior import covariances, item_grams, stability, vector_part
+from .posterior import covariances, item_grams, stability, vector_part, vector_weight
 
 GRID = np.array([0, 1, 2, 3, 5, 8, 12, 20, 30, 50, 80, 120, 200, 300, 500])
 STATUS = ("no ratings yet", "under-covered", "trusted")
@@ -88,7 +88,7 @@ class Assessor:
         prior_cov = model.prior_covariance_
         prior_var = np.trace(vector_part(model, prior_cov[None])[0])
         # relative variance: share of the prior's spread the ratings have not yet removed
-        rel = np.einsum("bii->b", vector_part(model, self.cov_now)) * self.weight / prior_var
+        rel = np.einsum("bii->b", vector_part(model, self.cov_now)) * vector_weight(model, self.weight) / prior_var
         self.relative_variance = rel
         self.pool = self._pool(pool_min_ratings) if pool is None else np.asarray(pool)
         if len(self.pool) <= k:

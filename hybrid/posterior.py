@@ -8,8 +8,9 @@ Recognition and Machine Learning, 2006, section 3.3):
     Sigma_i = (B_i^T B_i / sigma^2 + c_i Psi^-1)^-1 = sigma^2 (B_i^T B_i + c_i P)^-1,
 
 ``B_i`` the rows ``[1, theta_u]`` of the item's raters, ``Psi`` the prior
-covariance (learned, or ``sigma^2 / lam_item * I``) and ``P`` the prior
-precision the trainer used.  Ratings still to come count with the variance
+covariance (learned, or ``sigma^2 / lam_item * I``), ``P`` the prior
+precision the trainer used and ``c_i`` the item's prior weight (with a weight
+per coordinate, ``c_i Psi^-1`` reads ``S_i Psi^-1 S_i``, :func:`scaled`).  Ratings still to come count with the variance
 of a new rating (:func:`covariances`).  The
 *stability* of an item is the expected overlap of its top-k neighbour list
 with the list it would have once its vector is known: the share of the
@@ -50,10 +51,26 @@ def covariances(model, grams, weight, extra=None):
     of ratings still to come) with the noise of a new rating, ``Psi`` being
     the prior covariance.
     """
-    prec = grams / model.sigma2_ + weight[:, None, None] * np.linalg.inv(model.prior_covariance_)
+    prec = grams / model.sigma2_ + scaled(np.linalg.inv(model.prior_covariance_), weight)
     if extra is not None:
         prec = prec + extra / model.sigma2_new_
     return np.linalg.inv(prec)
+
+
+def scaled(P, weight):
+    """Each item's prior precision ``S_i P S_i`` (n, d, d), ``S_i = diag(sqrt(weight_i))``,
+    for a weight per item (n,) or per item and coordinate (n, d)."""
+    weight = np.asarray(weight, float)
+    if weight.ndim == 1:
+        return weight[:, None, None] * P[None]
+    s = np.sqrt(weight)
+    return s[:, :, None] * P[None] * s[:, None, :]
+
+
+def vector_weight(model, weight):
+    """Each item's prior weight on its vector (the mean over the vector's coordinates)."""
+    weight = np.asarray(weight, float)
+    return weight if weight.ndim == 1 else weight[:, 1 if model.biases else 0:].mean(1)
 
 
 def vector_part(model, cov):

@@ -54,20 +54,30 @@ def held_out_set(counts, seed, fraction=0.5, most=400, min_ratings=60, least=100
     return np.sort(np.random.default_rng(seed + 17).choice(members, n, replace=False))
 
 
-def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-5):
+def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-5, weight=None):
     """EM for the covariance of item blocks around known prior means.
 
     ``grams`` (n, d, d) and ``rhs`` (n, d) are each item's ``B^T B`` and
-    ``B^T y`` at fixed users.  Returns the converged ``Psi``.
+    ``B^T y`` at fixed users.  With a per-coordinate ``weight`` (n, d) item ``i``'s
+    prior covariance is ``S_i^-1 Psi S_i^-1`` (``S_i = diag(sqrt(weight_i))``),
+    so ``S_i (z_i - m_i)`` has covariance ``Psi``, which is kept block-diagonal
+    over the weight's column groups (the constrained maximum).  Returns the
+    converged ``Psi``.
     """
+    from .train import block_diagonal
+
     n, d = rhs.shape
+    s = np.ones((n, d)) if weight is None or np.ndim(weight) == 1 else np.sqrt(weight)
     for _ in range(rounds):
-        P = sigma2 * np.linalg.inv(Psi)
+        P = s[:, :, None] * (sigma2 * np.linalg.inv(Psi))[None] * s[:, None, :]
         prec = grams + P
-        z = np.linalg.solve(prec, (rhs + prior_mean @ P)[..., None])[..., 0]
-        D = z - prior_mean
-        new = (D.T @ D + sigma2 * np.linalg.inv(prec).sum(0)) / n
+        z = np.linalg.solve(prec, (rhs + np.einsum("nij,nj->ni", P, prior_mean))[..., None])[..., 0]
+        D = (z - prior_mean) * s
+        spread = np.einsum("ni,nij,nj->ij", s, sigma2 * np.linalg.inv(prec), s)
+        new = (D.T @ D + spread) / n
         new = 0.5 * (new + new.T) + 1e-9 * np.trace(new) / d * np.eye(d)
+        if weight is not None:
+            new = block_diagonal(new, weight)
         step = new + 0.8 * (new - Psi)        # over-relaxed: plain EM crawls here
         Psi_next = step if np.linalg.eigvalsh(step).min() > 0 else new
         if np.abs(Psi_next - Psi).max() <= tol * np.abs(Psi).max():
@@ -83,12 +93,12 @@ LAM_MAP_GRID = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0, 300.0, 1000.0)
 def _fold(data, F, A, weight, held, lam_user, lam_map, rounds, n_jobs):
     """Users, items and map re-fitted without the ``held`` items' ratings, and
     the held items' statistics against them."""
-    from .train import Factors, MapSolver, item_step, map_step, user_step
+    from .train import Factors, item_step, map_solver, map_step, user_step
 
     out = data.without(held)
     G = Factors(F.user.copy(), F.item.copy(), F.W.copy(), F.P.copy(), F.biases)
     rated = out.item_counts() > 0
-    solver = MapSolver(A[rated], weight[rated], lam_map)
+    solver = map_solver(A[rated], weight[rated], lam_map)
     for _ in range(rounds):  # undo the co-adaptation: users and map without the held-out items
         user_step(out, G, lam_user, n_jobs)
         item_step(out, G, A, weight, n_jobs)
@@ -134,7 +144,8 @@ def learn_prior(data, F, A, weight, sigma2, lam_user, lam_map, seed, n_jobs=1, r
         W = f["solver"].with_penalty(lam_map).solve(f["G"].item[f["rated"]], f["G"].P)
         f["m"] = np.asarray(A[f["held"]] @ W)
     cat = lambda key: np.concatenate([f[key] for f in parts])
-    Psi = em_covariance(cat("grams"), cat("rhs"), cat("m"), sigma2, sigma2 * np.linalg.inv(F.P))
+    Psi = em_covariance(cat("grams"), cat("rhs"), cat("m"), sigma2, sigma2 * np.linalg.inv(F.P),
+                        weight=weight[cat("held")] if np.ndim(weight) == 2 else None)
     scales = (1.0, 1.0)
     if recalibrate and all(len(f["pool"]) > 40 for f in parts):
         from .recalibrate import variance_scales

@@ -124,6 +124,36 @@ def _offsets(F: Factors, z):
     return np.zeros(len(z)) if bias is None else bias
 
 
+def prior_term(D, P, weight):
+    """``sum_i (s_i * D_i)^T P (s_i * D_i)``, ``s_i = sqrt(weight_i)`` (a number or one per coordinate)."""
+    weight = np.asarray(weight, float)
+    if weight.ndim == 1:
+        return float(np.sum((D @ P) * D, axis=1) @ weight)
+    Ds = D * np.sqrt(weight)
+    return float(np.sum((Ds @ P) * Ds))
+
+
+def column_groups(weight):
+    """Columns of the item block sharing one prior weight per item, for an ``(n, d)``
+    weight: ``[(columns, weights)]``; the prior precision must not couple groups."""
+    weight = np.asarray(weight, float)
+    groups = {}
+    for j in range(weight.shape[1]):
+        key = weight[:, j].tobytes()
+        groups.setdefault(key, []).append(j)
+    return [(np.array(cols), weight[:, cols[0]]) for cols in groups.values()]
+
+
+def block_diagonal(M, weight):
+    """``M`` with the entries coupling different column groups set to zero."""
+    if np.ndim(weight) == 1:
+        return M
+    out = np.zeros_like(M)
+    for cols, _ in column_groups(weight):
+        out[np.ix_(cols, cols)] = M[np.ix_(cols, cols)]
+    return out
+
+
 def objective(data, F, A, lam_user, lam_map, weight, sse=None):
     """The trainer's objective and the data term (sum of squared errors).
 
@@ -131,8 +161,7 @@ def objective(data, F, A, lam_user, lam_map, weight, sse=None):
     """
     if sse is None:
         sse = data.sse(F)
-    D = F.item - A @ F.W
-    prior = float(np.sum((D @ F.P) * D, axis=1) @ weight)
+    prior = prior_term(F.item - A @ F.W, F.P, weight)
     total = sse + lam_user * float(np.sum(F.user ** 2)) + prior + lam_map * float(np.sum(F.W ** 2))
     return total, sse
 
@@ -227,7 +256,35 @@ class MapSolver:
         return U2 @ (self.s[:, None] / (self.s[:, None] + c[None, :]))
 
 
-def map_step(F: Factors, A, rated, solver: MapSolver, data=None):
+class GroupedMapSolver:
+    """Map solves with one prior weight per item and column group (``column_groups``):
+    with a prior precision that does not couple the groups, each group's columns
+    of ``W`` are a weighted ridge regression of their own."""
+
+    def __init__(self, A_rated, weight, lam_map):
+        self.groups = [(cols, MapSolver(A_rated, w, lam_map)) for cols, w in column_groups(weight)]
+        self.primal = all(s.primal for _, s in self.groups)
+
+    def with_penalty(self, lam_map) -> "GroupedMapSolver":
+        other = object.__new__(GroupedMapSolver)
+        other.groups = [(cols, s.with_penalty(lam_map)) for cols, s in self.groups]
+        other.primal = self.primal
+        return other
+
+    def solve(self, Z_rated, P):
+        W = np.zeros((self.groups[0][1].At.shape[1], Z_rated.shape[1]))
+        for cols, s in self.groups:
+            W[:, cols] = s.solve(Z_rated[:, cols], P[np.ix_(cols, cols)])
+        return W
+
+
+def map_solver(A_rated, weight, lam_map):
+    """A :class:`MapSolver` for one weight per item, else a :class:`GroupedMapSolver`."""
+    weight = np.asarray(weight, float)
+    return MapSolver(A_rated, weight, lam_map) if weight.ndim == 1 else GroupedMapSolver(A_rated, weight, lam_map)
+
+
+def map_step(F: Factors, A, rated, solver, data=None):
     """Exact minimisation over ``W`` jointly with the unrated items' blocks.
 
     For any ``W`` the best block of an unrated item is its prior mean, at
@@ -235,12 +292,17 @@ def map_step(F: Factors, A, rated, solver: MapSolver, data=None):
     ones then follow ``W^T a_i``.  Data that can reduce the normal equations
     where the items live (``data.map_rhs``, the cluster engine) does so.
     """
-    if solver.primal and hasattr(data, "map_rhs"):
-        weight = np.zeros(len(rated))
-        weight[rated] = solver.sw[:, 0] ** 2
-        F.W = solver.solve_rhs(data.map_rhs(F.item, weight), F.P)
-    else:
-        F.W = solver.solve(F.item[rated], F.P)
+    parts = solver.groups if isinstance(solver, GroupedMapSolver) else [(np.arange(F.W.shape[1]), solver)]
+    W = np.zeros_like(F.W)
+    for cols, part in parts:
+        P = F.P[np.ix_(cols, cols)]
+        if part.primal and hasattr(data, "map_rhs"):
+            weight = np.zeros(len(rated))
+            weight[rated] = part.sw[:, 0] ** 2
+            W[:, cols] = part.solve_rhs(data.map_rhs(F.item[:, cols], weight), P)
+        else:
+            W[:, cols] = part.solve(F.item[rated][:, cols], P)
+    F.W = W
     unrated = ~rated
     if unrated.any():
         F.item[unrated] = A[unrated] @ F.W
@@ -277,13 +339,15 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
     d = rank + 1 if biases else rank
     rng = np.random.default_rng(seed)
     weight = np.ones(n_items) if weight is None else np.asarray(weight, float)
+    if P0 is not None:
+        P0 = block_diagonal(np.array(P0, float), weight)
     item = rng.normal(0.0, 0.1, (n_items, d))
     if biases:
         item[:, 0] = 0.0
     F = Factors(user=np.zeros((n_users, d)), item=item, W=np.zeros((A.shape[1], d)),
                 P=lam_item * np.eye(d) if P0 is None else np.array(P0, float), biases=biases)
     rated = data.item_counts() > 0
-    solver = MapSolver(A[rated], weight[rated], lam_map)
+    solver = map_solver(A[rated], weight[rated], lam_map)
     # with our own threads, BLAS runs on one: its idle threads would spin against ours
     with threadpool_limits(1 if n_jobs > 1 else None):
         _epochs(data, F, A, lam_user, lam_map, weight, rated, solver, epochs, tol, n_jobs, validate, on_epoch)

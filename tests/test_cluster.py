@@ -64,6 +64,16 @@ def test_cluster_trainer_equals_local(cluster, data, local_model, monkeypatch):
     assert len(reductions) >= FIT["epochs"]
 
 
+def test_cluster_trainer_with_bias_weighting_equals_local(cluster, data):
+    # one prior weight per item and coordinate group: each group's map reduced on the workers
+    c, _ = cluster
+    fit = {**FIT, "epochs": 4, "map_weighting": "bias", "weight_half": 3.0}
+    local = HybridFactorModel(**fit, schema=data.schema).fit(data.ratings, data.lots)
+    remote = HybridFactorModel(**fit, schema=data.schema, engine="dask", address=c.scheduler_address,
+                               partitions=3).fit(data.ratings, data.lots)
+    _assert_same_model(local, remote)
+
+
 def test_cluster_plan_and_scores_are_identical(cluster, data, local_model):
     _, client = cluster
     here = plan(local_model, k=5, budget=60, per_user=2, draws=16)

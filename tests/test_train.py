@@ -8,7 +8,8 @@ from sklearn.linear_model import Ridge
 
 from hybrid import HybridFactorModel
 from hybrid.samples import tasting_club
-from hybrid.train import Factors, MapSolver, item_step, map_step, objective, user_step
+from hybrid.prior import em_covariance
+from hybrid.train import Factors, MapSolver, item_step, map_solver, map_step, objective, user_step
 
 
 def dense_ratings(n_users=30, n_items=20, rank=3, noise=0.05, seed=0):
@@ -80,6 +81,81 @@ def test_map_step_with_general_prior_is_the_exact_minimiser(fitted):
     F.W = MapSolver(sp.csr_matrix(A), w, m.lam_map_).solve(m.item_blocks_[rated], F.P)
     grad = A.T @ (w[:, None] * (A @ F.W - m.item_blocks_[rated])) @ F.P + m.lam_map_ * F.W
     assert np.abs(grad).max() < 1e-8 * max(1.0, np.abs(A.T @ m.item_blocks_[rated]).max())
+
+
+def test_bias_weighting_keeps_every_half_step_descending(club):
+    # the bias coordinate's prior weighted per item, the vectors' not: still one objective
+    model = HybridFactorModel(rank=4, epochs=1, schema=club.schema, text_min_df=1, prior="fixed",
+                              map_weighting="bias", weight_half=3.0).fit(club.ratings, club.lots)
+    data, F, A = model._data(), model.factors_, model.attributes_
+    weight = model.prior_weight_
+    assert weight.shape == (len(model.item_ids_), 5) and (weight[:, 1:] == 1).all()
+    assert np.allclose(weight[:, 0], 1 + model.item_counts_ / 3.0)
+    rated = model.item_counts_ > 0
+    solver = map_solver(A[rated], weight[rated], model.lam_map_)
+    rng = np.random.default_rng(0)
+    M = rng.normal(size=(4, 4))
+    F.P = scipy.linalg.block_diag(2.0, M @ M.T + np.eye(4))    # a prior coupling no bias with a vector
+    values = [objective(data, F, A, model.lam_user, model.lam_map_, weight)[0]]
+    for _ in range(4):
+        for step in (lambda: user_step(data, F, model.lam_user), lambda: item_step(data, F, A, weight),
+                     lambda: map_step(F, A, rated, solver)):
+            step()
+            values.append(objective(data, F, A, model.lam_user, model.lam_map_, weight)[0])
+            assert values[-1] <= values[-2] * (1 + 1e-12), values[-2:]
+    # the map's bias column is a ridge regression of the item biases weighted by 1 + n / 3
+    # (reference: sklearn.linear_model.Ridge with sample_weight), its vector columns unweighted
+    Z = F.item[rated]
+    ref_b = Ridge(alpha=model.lam_map_ / 2.0, fit_intercept=False, solver="svd").fit(
+        A[rated].toarray(), Z[:, 0], sample_weight=weight[rated, 0])
+    assert np.allclose(F.W[:, 0], ref_b.coef_, atol=1e-8)
+    Px = F.P[1:, 1:]
+    Ad = A[rated].toarray()
+    grad = Ad.T @ (Ad @ F.W[:, 1:] - Z[:, 1:]) @ Px + model.lam_map_ * F.W[:, 1:]
+    assert np.abs(grad).max() < 1e-8 * max(1.0, np.abs(Ad.T @ Z[:, 1:]).max())
+
+
+def test_bias_weighted_learned_prior_couples_no_bias_with_a_vector(club, tmp_path):
+    m = HybridFactorModel(rank=3, epochs=8, schema=club.schema, text_min_df=1, map_weighting="bias",
+                          weight_half=5.0).fit(club.ratings, club.lots)
+    assert np.abs(m.prior_precision_[0, 1:]).max() == 0 and np.abs(m.prior_covariance_[0, 1:]).max() == 0
+    assert np.all(np.linalg.eigvalsh(m.prior_covariance_) > 0)
+    # the model file keeps the per-coordinate weights, and folding ratings in updates them
+    from hybrid.store import load_model, save_model
+    from hybrid.updates import fold_in
+
+    path = tmp_path / "bias.hybrid"
+    save_model(m, path)
+    back = load_model(path)
+    assert np.array_equal(back.prior_weight_, m.prior_weight_)
+    lot = m.item_ids_[int(np.argmin(m.item_counts_))]
+    new = pd.DataFrame({"user": m.user_ids_[:3], "item": [lot] * 3, "rating": [5.0, 4.5, 5.0]})
+    fold_in(back, new)
+    j = list(back.item_ids_).index(lot)
+    assert back.prior_weight_[j, 0] == pytest.approx(1 + back.item_counts_[j] / 5.0)
+    with pytest.raises(Exception, match="needs biases"):
+        HybridFactorModel(rank=3, map_weighting="bias", biases=False).fit(club.ratings, club.lots)
+
+
+def test_weighted_em_recovers_the_scaled_spread():
+    # with data that pins every block down, the EM estimate is the mean of S_i D_i D_i^T S_i,
+    # kept block-diagonal over the weight's column groups (bias | vector)
+    rng = np.random.default_rng(4)
+    n, d = 400, 4
+    weight = np.ones((n, d))
+    weight[:, 0] = rng.uniform(1, 9, n)
+    m = rng.normal(size=(n, d))
+    z = m + rng.normal(size=(n, d)) / np.sqrt(weight)
+    grams = np.broadcast_to(1e9 * np.eye(d), (n, d, d)).copy()
+    rhs = np.einsum("nij,nj->ni", grams, z)
+    Psi = em_covariance(grams, rhs, m, 1.0, np.eye(d), weight=weight)
+    S = (z - m) * np.sqrt(weight)
+    expected = S.T @ S / n
+    expected[0, 1:] = expected[1:, 0] = 0
+    assert np.allclose(Psi, expected, atol=1e-6)
+    # one weight per item on every coordinate: the same as no weight when all are one
+    ones = em_covariance(grams, rhs, m, 1.0, np.eye(d), weight=np.ones((n, d)))
+    assert np.allclose(ones, em_covariance(grams, rhs, m, 1.0, np.eye(d)), atol=1e-12)
 
 
 def test_user_step_equals_sklearn_ridge(fitted):
