@@ -180,8 +180,9 @@ def _solve_kernel(indptr, indices, values, rows, table, intercept, y_offset, P, 
     """Each row of ``rows``: gather its design, ``F^T F`` by one BLAS product, an
     in-place Cholesky factorisation and two triangular solves.  Compiled, with
     the GIL released, so threads can share the rows; ``prior_rhs[stride * r]``
-    is row ``r``'s ``S P S m`` and ``scale[s_stride * r]`` its ``diag(S)``.  The design rows are ``[1, table[c]]`` with ``intercept``
-    (the constant column is not stored: fewer cache lines per gathered row)."""
+    is row ``r``'s ``S P S m`` and ``scale[s_stride * r]`` its ``diag(S)``.  The
+    design rows are ``[1, table[c]]`` with ``intercept`` (the constant column is
+    not stored: fewer cache lines per gathered row)."""
     off = 1 if intercept else 0
     d = table.shape[1] + off
     for r in rows:

@@ -10,9 +10,9 @@ Recognition and Machine Learning, 2006, section 3.3):
 ``B_i`` the rows ``[1, theta_u]`` of the item's raters, ``Psi`` the prior
 covariance (learned, or ``sigma^2 / lam_item * I``), ``P`` the prior
 precision the trainer used and ``c_i`` the item's prior weight (with a weight
-per coordinate, ``c_i Psi^-1`` reads ``S_i Psi^-1 S_i``, :func:`scaled`).  Ratings still to come count with the variance
-of a new rating (:func:`covariances`).  The
-*stability* of an item is the expected overlap of its top-k neighbour list
+per coordinate, ``c_i Psi^-1`` reads ``S_i Psi^-1 S_i``, :func:`scaled`).
+Ratings still to come count with the variance of a new rating
+(:func:`covariances`).  The *stability* of an item is the expected overlap of its top-k neighbour list
 with the list it would have once its vector is known: the share of the
 current list that a draw from the posterior keeps in its own top k.
 """
