@@ -192,7 +192,7 @@ def _full_pool(X, pool, c2, listed, exclude, k, n_jobs=1):
                 tile = x @ pool32[j:j + _POOL_PER_TILE].T
                 tile += c232[j:j + _POOL_PER_TILE]
                 _fold_tile(tile, j, exclude[part], top_d, top_i)
-            out[part] = _shared(top_i, listed[part]) / k
+            out[part] = overlap_of_lists(listed[part], top_i)
 
     edges = np.linspace(0, len(X), max(1, min(int(n_jobs), len(X) // _DRAWS_PER_TILE + 1)) + 1).astype(int)
     shares = [slice(a, b) for a, b in zip(edges[:-1], edges[1:])]
@@ -225,19 +225,6 @@ def _fold_tile(tile, first, exclude, top_d, top_i):  # pragma: no cover - compil
                 top_d[i, s] = v
                 top_i[i, s] = first + t
                 worst = top_d[i, k - 1]
-
-
-@numba.njit(nogil=True, cache=True)
-def _shared(a, b):  # pragma: no cover - compiled
-    """Row-wise number of entries of ``a`` found in ``b``."""
-    out = np.zeros(a.shape[0])
-    for i in range(a.shape[0]):
-        for p in range(a.shape[1]):
-            for q in range(b.shape[1]):
-                if a[i, p] == b[i, q]:
-                    out[i] += 1
-                    break
-    return out
 
 
 def overlap_of_lists(a: np.ndarray, b: np.ndarray) -> np.ndarray:

@@ -17,8 +17,7 @@ import numpy as np
 import pandas as pd
 
 from hybrid import HybridFactorModel
-from hybrid.planner import Assessor, plan
-from hybrid.planner import _chol
+from hybrid.planner import Assessor, _chol, plan
 
 
 def catalogue(seed=0, trusted=20_000, covered=5_000, users=30_000, rank=32):
