@@ -43,7 +43,7 @@ def _solve_probes(model, A_probe, indptr, idx, vals):
     counts = np.diff(indptr)
     weight = model._weight_for_counts(counts)
     P = model.new_rating_precision_
-    z, _, _ = solve_rows(indptr, idx, vals, Fe, offset, P, np.asarray(A_probe @ F.W), weight)
+    z, _, _ = solve_rows(indptr, idx, vals, Fe, offset, P, model._launch_blocks(A_probe), weight)
     grams = row_grams(indptr, idx, vals, Fe, offset)[0]
     # no rater saw these ratings: they count with the variance of a new rating
     cov = model.sigma2_new_ * np.linalg.inv(grams + scaled(P, weight))

@@ -10,15 +10,17 @@ from .data import check_items_described, validate_attributes, validate_ratings
 from .errors import InputError
 from .features import AttributeEncoder
 from .cluster import training_data
+from .launch import launch_offset
+from .scores import Scores
 from .train import Factors, RatingData, fit_factors, objective
 
 _PARAMS = ("rank", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
-           "map_weighting", "weight_half", "holdout", "biases", "n_jobs", "text_max_features", "text_min_df",
+           "map_weighting", "weight_half", "launch_offset", "holdout", "biases", "n_jobs", "text_max_features", "text_min_df",
            "text_ngrams", "tag_separator", "engine", "address", "partitions",
            "shared_dir")
 
 
-class HybridFactorModel:
+class HybridFactorModel(Scores):
     """Low-rank rating factors fitted jointly with a map from item attributes.
 
     Parameters
@@ -55,6 +57,15 @@ class HybridFactorModel:
     weight_half : float
         With ``'precision'`` the rating count at which an item weighs half; with
         ``'bias'`` the count that adds one to the bias weight.
+    launch_offset : {'learned', 'none'}
+        ``'learned'`` measures, after the fit, how far projections fall short on
+        the ratings items then get (out of sample, rating-weighted;
+        :mod:`hybrid.launch`) and adds that to the bias of every item that had
+        no ratings when the model was fitted, and of items added since: the
+        expected rating of a new item is then what its future ratings should
+        average, not what the typical item's do.  The value is
+        ``launch_offset_``; items that had ratings at the fit keep their
+        projection as prior mean.  Needs biases.
     holdout : float
         Fraction of ratings kept aside to report validation RMSE per epoch.
     biases : bool
@@ -87,7 +98,8 @@ class HybridFactorModel:
     """
 
     def __init__(self, rank=16, lam_user=5.0, lam_item=5.0, lam_map="auto", epochs=25, tol=1e-5,
-                 seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0, holdout=0.0,
+                 seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0,
+                 launch_offset="learned", holdout=0.0,
                  biases=True, n_jobs=1, text_max_features=2000, text_min_df=2, text_ngrams=1,
                  tag_separator="|", engine="local", address=None, partitions=8,
                  shared_dir=None):
@@ -102,6 +114,7 @@ class HybridFactorModel:
         self.prior = prior
         self.map_weighting = map_weighting
         self.weight_half = weight_half
+        self.launch_offset = launch_offset
         self.holdout = holdout
         self.biases = biases
         self.n_jobs = n_jobs
@@ -133,6 +146,8 @@ class HybridFactorModel:
             raise InputError(f"map_weighting must be 'none', 'precision' or 'bias', found {self.map_weighting!r}")
         if self.map_weighting == "bias" and not self.biases:
             raise InputError("map_weighting 'bias' needs biases = true")
+        if self.launch_offset not in ("learned", "none"):
+            raise InputError(f"launch_offset must be 'learned' or 'none', found {self.launch_offset!r}")
         if not 0 <= self.holdout < 1:
             raise InputError(f"holdout must be in [0, 1), found {self.holdout!r}")
         if self.engine not in ("local", "dask"):
@@ -196,6 +211,7 @@ class HybridFactorModel:
             final = objective(data, F, self.attributes_, self.lam_user, lam_map, weight)
         self._set_factors(F, data.mu, sigma2, weight, sigma2_new)
         self.lam_map_ = lam_map
+        self._set_launch(weight)
         last = dict(F.history[-1])
         # the final state (after the learned prior and the last item step) is what is reported
         last["objective"], sse = final
@@ -208,7 +224,7 @@ class HybridFactorModel:
                          "train_rmse": last["train_rmse"],
                          "valid_rmse": last["valid_rmse"] if valid.size else None,
                          "sigma2": self.sigma2_, "sigma2_new": self.sigma2_new_, "lam_map": self.lam_map_,
-                         "variance_scales": list(F.scales),
+                         "variance_scales": list(F.scales), "launch_offset": self.launch_offset_,
                          "seconds": time.perf_counter() - t0}
         return self
 
@@ -242,6 +258,22 @@ class HybridFactorModel:
         # prior: it keeps the learned spread around its projection (weight 1)
         return np.where(counts == 0, 1.0, np.maximum(counts / (counts + self.weight_half), 0.05))
 
+    def _set_launch(self, weight):
+        """Measure the launch offset and move the unrated items' bias by it (their
+        blocks are their prior means)."""
+        self.launched_ = self.item_counts_ == 0
+        self.launch_offset_ = 0.0
+        if self.launch_offset == "learned":
+            u, i, r = self.ratings_
+            self.launch_offset_ = launch_offset(u, i, r, self.mu_, self.factors_, self.attributes_, weight,
+                                                self.lam_map_)
+        self.factors_.item[:, 0] += self._prior_shift()
+
+    def _prior_shift(self, rows=None):
+        """What each item's prior mean adds to its projection's bias (zeros without biases)."""
+        launched = self.launched_ if rows is None else self.launched_[rows]
+        return self.launch_offset_ * launched if self.biases else np.zeros(len(launched))
+
     def _set_factors(self, F: Factors, mu, sigma2, weight, sigma2_new=None):
         self.factors_ = F
         self.mu_ = float(mu)
@@ -252,11 +284,6 @@ class HybridFactorModel:
         self.item_counts_ = np.bincount(self.ratings_[1], minlength=len(self.item_ids_))
         self.user_counts_ = np.bincount(self.ratings_[0], minlength=len(self.user_ids_))
         self.rating_range_ = (float(np.min(self.ratings_[2])), float(np.max(self.ratings_[2])))
-
-    def clip(self, scores):
-        """Scores limited to the range of ratings seen in training (for display and
-        expected ratings; the raw scores keep their linear structure)."""
-        return np.clip(scores, *self.rating_range_)
 
     # ------------------------------------------------------------- access
     def _fitted(self):
@@ -295,100 +322,6 @@ class HybridFactorModel:
         """The prior precision on the scale of a new rating, ``sigma2_new_ * Psi^-1``:
         what an item solved from ratings its raters were not fitted to uses."""
         return self.sigma2_new_ * np.linalg.inv(self.prior_covariance_)
-
-    def _blocks_for_items(self, items, attributes=None):
-        """Blocks of known items, projections of the others (from ``attributes``)."""
-        F = self._fitted()
-        items = np.asarray(items, dtype=str)
-        pos = pd.Index(self.item_ids_).get_indexer(items)
-        z = np.empty((len(items), F.item.shape[1]))
-        known = pos >= 0
-        z[known] = F.item[pos[known]]
-        if (~known).any():
-            unknown = items[~known]
-            if attributes is None or not np.isin(unknown, attributes.index.astype(str)).all():
-                missing = unknown[~np.isin(unknown, [] if attributes is None else attributes.index.astype(str))]
-                raise InputError(f"item '{missing[0]}' is not in the model and has no attribute row")
-            z[~known] = self._project_blocks(attributes.loc[unknown])
-        return z
-
-    def _project_blocks(self, attributes):
-        A = self.features_.transform(attributes)
-        return np.asarray(A @ self._fitted().W)
-
-    def project(self, attributes: pd.DataFrame) -> pd.DataFrame:
-        """Projected blocks ``W^T a`` of items from their attributes alone.
-
-        Returns a DataFrame indexed by item with ``bias`` and ``f0..f{rank-1}``.
-        """
-        self._fitted()
-        attributes = validate_attributes(attributes, None, self.features_._spec(), source="attributes",
-                                         require_all=False)
-        z = self._project_blocks(attributes)
-        return self._frame(z, attributes.index)
-
-    def _frame(self, z, index):
-        cols = (["bias"] if self.biases else []) + [f"f{j}" for j in range(self.rank)]
-        return pd.DataFrame(z, index=pd.Index(np.asarray(index, dtype=str), name="item"), columns=cols)
-
-    def item_vectors(self) -> pd.DataFrame:
-        """Blocks of every known item (rated ones fitted, unrated ones projected)."""
-        return self._frame(self._fitted().item, self.item_ids_)
-
-    def _user_rows(self, users):
-        F = self._fitted()
-        users = np.asarray(users, dtype=str)
-        pos = np.searchsorted(self.user_ids_, users)
-        pos = np.minimum(pos, len(self.user_ids_) - 1)
-        known = self.user_ids_[pos] == users
-        # an unknown user has the prior block (zeros): predictions fall back to mu + b_i
-        return np.where(known[:, None], F.user[pos], 0.0)
-
-    def _predict_codes(self, F, mu, u, i):
-        ub, ut = F.split(F.user)
-        ib, ix = F.split(F.item)
-        pred = mu + np.einsum("nk,nk->n", ut[u], ix[i])
-        return pred + (ub[u] + ib[i] if ub is not None else 0.0)
-
-    def _combine(self, wu, zi):
-        self._fitted()
-        if not self.biases:
-            return self.mu_ + np.einsum("nk,nk->n", wu, zi)
-        return self.mu_ + wu[:, 0] + zi[:, 0] + np.einsum("nk,nk->n", wu[:, 1:], zi[:, 1:])
-
-    def predict(self, users, items, attributes: pd.DataFrame | None = None) -> np.ndarray:
-        """Expected ratings for pairs ``(users[n], items[n])``.
-
-        Items the model has never seen are projected from ``attributes``;
-        users it has never seen get the population block (``mu + b_i``).
-        """
-        users, items = np.asarray(users, dtype=str), np.asarray(items, dtype=str)
-        if users.shape != items.shape:
-            raise InputError(f"users and items must have the same length, found {users.size} and {items.size}")
-        return self._combine(self._user_rows(users), self._blocks_for_items(items, attributes))
-
-    def score_blocks(self, z: np.ndarray, chunk: int = 2048):
-        """Yield ``(start, block)`` of the item x user score matrix for blocks ``z``."""
-        F = self._fitted()
-        ub, ut = F.split(F.user)
-        ib, ix = F.split(z)
-        for s in range(0, len(z), chunk):
-            block = self.mu_ + ix[s:s + chunk] @ ut.T
-            if ub is not None:
-                block += ib[s:s + chunk, None] + ub[None, :]
-            yield s, block
-
-    def score_matrix(self, items, attributes: pd.DataFrame | None = None, chunk: int = 2048) -> np.ndarray:
-        """The item x user matrix ``mu + b_i + b_u + X Theta^T`` for ``items``.
-
-        Computed ``chunk`` items at a time; callers that need many items
-        should iterate :meth:`score_blocks` instead of holding it all.
-        """
-        z = self._blocks_for_items(items, attributes)
-        out = np.empty((len(z), len(self.user_ids_)))
-        for s, block in self.score_blocks(z, chunk):
-            out[s:s + len(block)] = block
-        return out
 
     # ------------------------------------------------------------ fold-in
     def fold_in(self, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None):

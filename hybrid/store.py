@@ -22,7 +22,7 @@ from .errors import InputError
 from .outputs import atomic_path
 
 FORMAT = "hybrid-model"
-VERSION = 1
+VERSION = 2     # 2: the launch offset and which items carry it
 
 
 def _digest(arr: np.ndarray) -> str:
@@ -35,7 +35,7 @@ def _arrays(model) -> dict[str, np.ndarray]:
     u, i, r = model.ratings_
     arrays = {"user_ids": model.user_ids_.astype(str), "item_ids": model.item_ids_.astype(str),
               "user_blocks": F.user, "item_blocks": F.item, "map": F.W, "prior_precision": F.P,
-              "prior_weight": model.prior_weight_, "ratings_user": u, "ratings_item": i,
+              "prior_weight": model.prior_weight_, "launched": model.launched_, "ratings_user": u, "ratings_item": i,
               "ratings_value": r, "attr_data": A.data, "attr_indices": A.indices,
               "attr_indptr": A.indptr, "attr_shape": np.array(A.shape, dtype=np.int64)}
     table = getattr(model, "item_table_", None)
@@ -56,7 +56,7 @@ def save_model(model, path) -> None:
         "params": model.get_params(), "settings": getattr(model, "settings_", None),
         "features": model.features_.get_state(), "metrics": model.metrics_,
         "history": model.history_, "mu": model.mu_, "sigma2": model.sigma2_,
-        "sigma2_new": model.sigma2_new_,
+        "sigma2_new": model.sigma2_new_, "launch_offset": model.launch_offset_,
         "biases": model.factors_.biases,
         "table_columns": [] if table is None else [str(c) for c in table.columns],
         "arrays": {k: {"sha256": _digest(v), "shape": list(v.shape), "dtype": str(v.dtype)}
@@ -140,6 +140,7 @@ def load_model(path):
                 bool(manifest["biases"]), list(manifest["history"]))
     model._set_factors(F, manifest["mu"], manifest["sigma2"], a["prior_weight"], manifest["sigma2_new"])
     model.lam_map_ = manifest["metrics"].get("lam_map")
+    model.launched_, model.launch_offset_ = a["launched"].astype(bool), float(manifest["launch_offset"])
     model.metrics_ = manifest["metrics"]
     model.extras_ = {k[len("extra_"):]: v for k, v in a.items() if k.startswith("extra_")}
     columns = manifest.get("table_columns", [])

@@ -187,11 +187,18 @@ def user_step(data, F: Factors, lam_user, n_jobs=1, with_edf=False, rows=None):
     return edf
 
 
-def item_step(data, F: Factors, A, weight, n_jobs=1, with_edf=False, rows=None):
-    """Exact minimisation over every item's block (or ``rows`` only), users and map fixed."""
+def item_step(data, F: Factors, A, weight, n_jobs=1, with_edf=False, rows=None, shift=None):
+    """Exact minimisation over every item's block (or ``rows`` only), users and map fixed.
+
+    ``shift`` (one per selected item) is added to the bias of the prior mean
+    ``W^T a_i`` (the launch offset of items that were new at the fit).
+    """
     ub, ut = F.split(F.user)
     sel = slice(None) if rows is None else rows
-    z, edf, sse = data.solve("item", _design(ut, ub, data.nnz), _offsets(F, F.user), F.P, A[sel] @ F.W,
+    prior_mean = np.asarray(A[sel] @ F.W)
+    if shift is not None:
+        prior_mean[:, 0] += shift
+    z, edf, sse = data.solve("item", _design(ut, ub, data.nnz), _offsets(F, F.user), F.P, prior_mean,
                              weight[sel], n_jobs, with_edf, rows)
     F.item[sel] = z
     F.sse = sse  # the data term after this step (a map step leaves it unchanged)

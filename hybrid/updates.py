@@ -43,7 +43,8 @@ def fold_in(model, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None
     if model.map_weighting != "none":
         model.prior_weight_[touched_i] = model._prior_weight(data)[touched_i]
     user_step(data, F, model.lam_user, rows=touched_u)
-    item_step(data, F, model.attributes_, model.prior_weight_, rows=touched_i)
+    item_step(data, F, model.attributes_, model.prior_weight_, rows=touched_i,
+              shift=model._prior_shift(touched_i))
     model.item_counts_ = np.bincount(model.ratings_[1], minlength=len(model.item_ids_))
     model.user_counts_ = np.bincount(model.ratings_[0], minlength=len(model.user_ids_))
     return model
@@ -71,11 +72,12 @@ def add_items(model, attributes: pd.DataFrame):
         return model
     new = attributes.index.to_numpy(dtype=str)
     A_new = model.features_.transform(attributes)
-    F.item = np.vstack([F.item, np.asarray(A_new @ F.W)])
+    F.item = np.vstack([F.item, model._launch_blocks(A_new)])   # new: at its prior mean
     model.attributes_ = sp.vstack([model.attributes_, A_new], format="csr")
     model.item_ids_ = np.concatenate([model.item_ids_, new])
     model.prior_weight_ = np.concatenate([model.prior_weight_, model._weight_for_counts(np.zeros(len(new)))])
     model.item_counts_ = np.concatenate([model.item_counts_, np.zeros(len(new), dtype=model.item_counts_.dtype)])
+    model.launched_ = np.concatenate([model.launched_, np.ones(len(new), bool)])
     if getattr(model, "item_table_", None) is not None:
         extra = attributes.astype(str).reindex(columns=model.item_table_.columns, fill_value="")
         model.item_table_ = pd.concat([model.item_table_, extra.set_axis(pd.Index(new, name="item"), axis=0)])

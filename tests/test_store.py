@@ -32,7 +32,7 @@ def test_manifest_is_json_with_version_and_checksums(saved):
     with zipfile.ZipFile(saved) as zf:
         manifest = json.loads(zf.read("manifest.json"))
         names = zf.namelist()
-    assert manifest["format"] == "hybrid-model" and manifest["format_version"] == 1
+    assert manifest["format"] == "hybrid-model" and manifest["format_version"] == 2
     assert all(n == "manifest.json" or n.endswith(".npy") for n in names)
     assert len(manifest["checksum"]) == 64
     for meta in manifest["arrays"].values():
@@ -68,7 +68,7 @@ def test_wrong_version_and_foreign_files(saved, tmp_path):
                 m["format_version"] = 9
                 data = json.dumps(m)
             dst.writestr(name, data)
-    with pytest.raises(InputError, match="format version 9; this hybrid reads version 1"):
+    with pytest.raises(InputError, match="format version 9; this hybrid reads version 2"):
         hybrid.load(other)
     csv = tmp_path / "ratings.csv"
     csv.write_text("user,item,rating\n")

@@ -222,7 +222,9 @@ def test_same_seed_same_model(club):
 
 def test_unrated_items_keep_their_prior_mean(fitted, club):
     unrated = fitted.item_counts_ == 0
-    assert np.allclose(fitted.item_blocks_[unrated], fitted.attributes_[unrated] @ fitted.map_)
+    assert unrated.any() and np.array_equal(fitted.launched_, unrated)
+    launch = np.r_[fitted.launch_offset_, np.zeros(fitted.rank)]      # on the bias alone
+    assert np.allclose(fitted.item_blocks_[unrated], fitted.attributes_[unrated] @ fitted.map_ + launch)
     proj = fitted.project(club.lots.iloc[np.flatnonzero(unrated)])
     assert np.allclose(proj.to_numpy(), fitted.item_blocks_[unrated])
 
@@ -242,7 +244,8 @@ def test_fold_in_resolves_only_touched_rows(club):
     users = np.searchsorted(m.user_ids_, fresh["user"])
     B = np.hstack([np.ones((3, 1)), F.user[users, 1:]])
     y = fresh["rating"].to_numpy() - m.mu_ - F.user[users, 0]
-    prior = m.attributes_[j] @ F.W
+    prior = m.attributes_[j] @ F.W + np.r_[m.launch_offset_, 0, 0, 0]   # new at the fit: launch offset
+    assert m.launched_[j] and m.launch_offset_ != 0
     expect = np.linalg.solve(B.T @ B + F.P, B.T @ y + F.P @ np.ravel(prior))
     assert np.allclose(F.item[j], expect)
     assert "NEW-MEMBER" in m.user_ids_
