@@ -23,6 +23,7 @@ from .outputs import atomic_path
 
 FORMAT = "hybrid-model"
 VERSION = 2     # 2: the launch offset and which items carry it
+READS = (1, 2)  # a version-1 model was fitted without the offset: it reads as offset 0
 
 
 def _digest(arr: np.ndarray) -> str:
@@ -95,8 +96,9 @@ def read_manifest(path) -> tuple[dict, dict]:
             raise _bad(path, f"its manifest is damaged ({type(exc).__name__})") from None
         if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
             raise _bad(path, "its manifest is not a hybrid model manifest")
-        if manifest.get("format_version") != VERSION:
-            raise _bad(path, f"format version {manifest.get('format_version')!r}; this hybrid reads version {VERSION}")
+        if manifest.get("format_version") not in READS:
+            raise _bad(path, f"format version {manifest.get('format_version')!r}; this hybrid reads versions "
+                             f"{', '.join(map(str, READS))}")
         arrays = {}
         for name, meta in manifest["arrays"].items():
             try:
@@ -140,7 +142,10 @@ def load_model(path):
                 bool(manifest["biases"]), list(manifest["history"]))
     model._set_factors(F, manifest["mu"], manifest["sigma2"], a["prior_weight"], manifest["sigma2_new"])
     model.lam_map_ = manifest["metrics"].get("lam_map")
-    model.launched_, model.launch_offset_ = a["launched"].astype(bool), float(manifest["launch_offset"])
+    if manifest["format_version"] == 1:   # no offset then: new items sat at their projection
+        model.launched_, model.launch_offset_ = model.item_counts_ == 0, 0.0
+    else:
+        model.launched_, model.launch_offset_ = a["launched"].astype(bool), float(manifest["launch_offset"])
     model.metrics_ = manifest["metrics"]
     model.extras_ = {k[len("extra_"):]: v for k, v in a.items() if k.startswith("extra_")}
     columns = manifest.get("table_columns", [])

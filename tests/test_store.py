@@ -68,7 +68,7 @@ def test_wrong_version_and_foreign_files(saved, tmp_path):
                 m["format_version"] = 9
                 data = json.dumps(m)
             dst.writestr(name, data)
-    with pytest.raises(InputError, match="format version 9; this hybrid reads version 2"):
+    with pytest.raises(InputError, match="format version 9; this hybrid reads versions 1, 2"):
         hybrid.load(other)
     csv = tmp_path / "ratings.csv"
     csv.write_text("user,item,rating\n")
@@ -93,3 +93,23 @@ def test_failed_save_leaves_nothing(fitted, tmp_path, monkeypatch):
     assert list(tmp_path.iterdir()) == []
     with pytest.raises(InputError, match="folder .* does not exist"):
         fitted.save(tmp_path / "nowhere" / "m.hybrid")
+
+
+def test_version_one_files_read_as_fitted_without_the_launch_offset(fitted, saved, tmp_path, club):
+    old = tmp_path / "v1.hybrid"
+    with zipfile.ZipFile(saved) as src, zipfile.ZipFile(old, "w") as dst:
+        for name in src.namelist():
+            data = src.read(name)
+            if name == "arrays/launched.npy":
+                continue
+            if name == "manifest.json":
+                m = json.loads(data)
+                m["format_version"] = 1
+                del m["launch_offset"], m["arrays"]["launched"]
+                data = json.dumps(m)
+            dst.writestr(name, data)
+    model = hybrid.load(old)
+    assert model.launch_offset_ == 0.0 and fitted.launch_offset_ != 0.0
+    assert np.array_equal(model.launched_, fitted.item_counts_ == 0)
+    new = club.new_lots.iloc[:2]
+    assert np.allclose(model.project(new).to_numpy(), model.features_.transform(new) @ model.map_)
