@@ -256,11 +256,16 @@ class MapSolver:
         """
         D, _ = np.linalg.eigh(P)
         c = self.lam_map / np.maximum(D, 1e-12)
-        if self.primal:
-            U2 = np.asarray(self.At[rows] @ self.V) ** 2
-            return U2 @ (1.0 / (self.s[:, None] + c[None, :]))
-        U2 = self.V[rows] ** 2
-        return U2 @ (self.s[:, None] / (self.s[:, None] + c[None, :]))
+        rows = np.asarray(rows)
+        out = np.empty((len(rows), len(D)))
+        step = max(1, (1 << 22) // max(self.V.shape[0], 1))   # bounded: a few million floats per block
+        for s in range(0, len(rows), step):
+            block = rows[s:s + step]
+            if self.primal:
+                out[s:s + step] = (np.asarray(self.At[block] @ self.V) ** 2) @ (1.0 / (self.s[:, None] + c[None, :]))
+            else:
+                out[s:s + step] = (self.V[block] ** 2) @ (self.s[:, None] / (self.s[:, None] + c[None, :]))
+        return out
 
 
 class GroupedMapSolver:
