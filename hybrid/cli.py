@@ -78,7 +78,8 @@ def _summary(model) -> dict:
             "rank": model.rank, "epochs run": m["epochs_run"], "objective": round(m["objective"], 3),
             "train RMSE": round(m["train_rmse"], 4),
             "validation RMSE": None if m["valid_rmse"] is None else round(m["valid_rmse"], 4),
-            "residual variance": round(m["sigma2"], 4), "seconds": round(m["seconds"], 2)}
+            "residual variance": round(m["sigma2"], 4),
+            "launch offset (new items' bias)": round(model.launch_offset_, 4), "seconds": round(m["seconds"], 2)}
 
 
 @app.command()

@@ -49,6 +49,7 @@ def test_train_summary_and_model(files):
     assert s["ratings"] + s["held out"] == len(pd.read_csv(files["ratings"]))
     m = hybrid.load(files["model"])
     assert m.metrics_["train_rmse"] == pytest.approx(s["train RMSE"], abs=1e-4)
+    assert m.launch_offset_ == pytest.approx(s["launch offset (new items' bias)"], abs=1e-4)
     assert m.settings_["ratings"]["user"] == "member"
 
 
