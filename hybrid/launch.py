@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from .train import GroupedMapSolver, map_solver
+from .mapsolve import GroupedMapSolver, map_solver
 
 
 def loo_projections(A_rated, Z_rated, weight, lam_map, P):

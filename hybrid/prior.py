@@ -64,7 +64,7 @@ def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-5, wei
     over the weight's column groups (the constrained maximum).  Returns the
     converged ``Psi``.
     """
-    from .train import block_diagonal
+    from .mapsolve import block_diagonal
 
     n, d = rhs.shape
     s = np.ones((n, d)) if weight is None or np.ndim(weight) == 1 else np.sqrt(weight)
@@ -93,7 +93,8 @@ LAM_MAP_GRID = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0, 300.0, 1000.0)
 def _fold(data, F, A, weight, held, lam_user, lam_map, rounds, n_jobs):
     """Users, items and map re-fitted without the ``held`` items' ratings, and
     the held items' statistics against them."""
-    from .train import Factors, item_step, map_solver, map_step, user_step
+    from .mapsolve import map_solver
+    from .train import Factors, item_step, map_step, user_step
 
     out = data.without(held)
     G = Factors(F.user.copy(), F.item.copy(), F.W.copy(), F.P.copy(), F.biases)

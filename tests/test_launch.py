@@ -6,7 +6,7 @@ import scipy.sparse as sp
 
 from hybrid import HybridFactorModel
 from hybrid.launch import loo_projections
-from hybrid.train import block_diagonal
+from hybrid.mapsolve import block_diagonal
 
 
 def _refit_map(A, Z, w, lam, P):

@@ -9,7 +9,8 @@ from sklearn.linear_model import Ridge
 from hybrid import HybridFactorModel
 from hybrid.samples import tasting_club
 from hybrid.prior import em_covariance
-from hybrid.train import Factors, MapSolver, item_step, map_solver, map_step, objective, user_step
+from hybrid.mapsolve import MapSolver, map_solver
+from hybrid.train import Factors, item_step, map_step, objective, user_step
 
 
 def dense_ratings(n_users=30, n_items=20, rank=3, noise=0.05, seed=0):
