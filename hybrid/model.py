@@ -15,9 +15,9 @@ from .scores import Scores
 from .train import Factors, RatingData, fit_factors, objective
 
 _PARAMS = ("rank", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
-           "map_weighting", "weight_half", "launch_offset", "holdout", "biases", "n_jobs", "text_max_features", "text_min_df",
-           "text_ngrams", "tag_separator", "engine", "address", "partitions",
-           "shared_dir")
+           "map_weighting", "weight_half", "launch_offset", "holdout", "biases", "n_jobs",
+           "text_max_features", "text_min_df", "text_ngrams", "tag_separator", "engine", "address",
+           "partitions", "shared_dir")
 
 
 class HybridFactorModel(Scores):
