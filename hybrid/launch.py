@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from .mapsolve import GroupedMapSolver, map_solver
+from .mapsolve import column_parts, map_solver
 
 
 def loo_projections(A_rated, Z_rated, weight, lam_map, P):
@@ -59,10 +59,9 @@ def loo_projections(A_rated, Z_rated, weight, lam_map, P):
     True
     """
     solver = map_solver(A_rated, weight, lam_map)
-    parts = solver.groups if isinstance(solver, GroupedMapSolver) else [(np.arange(Z_rated.shape[1]), solver)]
     out = np.empty_like(Z_rated, dtype=float)
     rows = np.arange(Z_rated.shape[0])
-    for cols, part in parts:
+    for cols, part in column_parts(solver, Z_rated.shape[1]):
         Pg = P[np.ix_(cols, cols)]
         Zg = Z_rated[:, cols]
         residual = Zg - np.asarray(A_rated @ part.solve(Zg, Pg))

@@ -121,3 +121,8 @@ def map_solver(A_rated, weight, lam_map):
     """A :class:`MapSolver` for one weight per item, else a :class:`GroupedMapSolver`."""
     weight = np.asarray(weight, float)
     return MapSolver(A_rated, weight, lam_map) if weight.ndim == 1 else GroupedMapSolver(A_rated, weight, lam_map)
+
+
+def column_parts(solver, d):
+    """``[(columns, MapSolver)]``: the solves that make up ``solver`` over a block of ``d`` columns."""
+    return solver.groups if isinstance(solver, GroupedMapSolver) else [(np.arange(d), solver)]

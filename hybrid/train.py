@@ -24,7 +24,7 @@ import scipy.sparse as sp
 from threadpoolctl import threadpool_limits
 
 from .blocks import design, leverage_rows, solve_rows, sse_rows
-from .mapsolve import GroupedMapSolver, block_diagonal, map_solver
+from .mapsolve import block_diagonal, column_parts, map_solver
 from .prior import learn_prior, predictive_sigma2, well_rated
 
 
@@ -193,9 +193,8 @@ def map_step(F: Factors, A, rated, solver, data=None):
     ones then follow ``W^T a_i``.  Data that can reduce the normal equations
     where the items live (``data.map_rhs``, the cluster engine) does so.
     """
-    parts = solver.groups if isinstance(solver, GroupedMapSolver) else [(np.arange(F.W.shape[1]), solver)]
     W = np.zeros_like(F.W)
-    for cols, part in parts:
+    for cols, part in column_parts(solver, F.W.shape[1]):
         P = F.P[np.ix_(cols, cols)]
         if part.primal and hasattr(data, "map_rhs"):
             weight = np.zeros(len(rated))
