@@ -39,6 +39,7 @@ DEFAULTS: dict[str, dict[str, Any]] = {
     },
     "model": {
         "rank": 16,
+        "rank_choice": "held-out",
         "lam_user": 5.0,
         "lam_item": 5.0,
         "lam_map": "auto",
@@ -172,6 +173,7 @@ def validate(cfg: dict, source: str) -> None:
     m = cfg["model"]
     checks = [
         (isinstance(m["rank"], int) and m["rank"] >= 1, "model.rank", "a whole number >= 1"),
+        (m["rank_choice"] in ("held-out", "fixed"), "model.rank_choice", "'held-out' or 'fixed'"),
         (m["lam_user"] > 0, "model.lam_user", "a number > 0"),
         (m["lam_item"] > 0, "model.lam_item", "a number > 0"),
         (m["lam_map"] == "auto" or (not isinstance(m["lam_map"], str) and m["lam_map"] > 0),
@@ -207,7 +209,8 @@ def model_params(cfg: dict) -> dict:
     """The keyword arguments of :class:`hybrid.HybridFactorModel` from settings."""
     m = cfg["model"]
     return {
-        "rank": m["rank"], "lam_user": float(m["lam_user"]), "lam_item": float(m["lam_item"]),
+        "rank": m["rank"], "rank_choice": m["rank_choice"],
+        "lam_user": float(m["lam_user"]), "lam_item": float(m["lam_item"]),
         "lam_map": m["lam_map"] if m["lam_map"] == "auto" else float(m["lam_map"]), "epochs": m["epochs"], "tol": float(m["tol"]),
         "seed": m["seed"], "prior": m["prior"], "map_weighting": m["map_weighting"],
         "weight_half": float(m["weight_half"]), "launch_offset": m["launch_offset"],

@@ -11,10 +11,11 @@ from .errors import InputError
 from .features import AttributeEncoder
 from .cluster import training_data
 from .launch import launch_offset
+from .ranksearch import search_rank
 from .scores import Scores
 from .train import Factors, RatingData, fit_factors, objective
 
-_PARAMS = ("rank", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
+_PARAMS = ("rank", "rank_choice", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
            "map_weighting", "weight_half", "launch_offset", "holdout", "biases", "n_jobs",
            "text_max_features", "text_min_df", "text_ngrams", "tag_separator", "engine", "address",
            "partitions", "shared_dir")
@@ -26,7 +27,14 @@ class HybridFactorModel(Scores):
     Parameters
     ----------
     rank : int
-        Length of the user and item vectors.
+        Most dimensions of the user and item vectors.  With
+        ``rank_choice='held-out'`` the fit grows the model one rank at a time
+        and keeps the rank whose held-out error is lowest (``rank_``, at most
+        ``rank``; :mod:`hybrid.ranksearch`), so a rank larger than the data
+        supports is harmless; with ``'fixed'`` the vectors have ``rank``
+        dimensions.
+    rank_choice : {'held-out', 'fixed'}
+        How the fitted rank ``rank_`` is chosen (see ``rank``).
     lam_user, lam_item, lam_map : float
         Regularisation of user blocks, of item blocks around their attribute
         projection, and of the map.  ``lam_map='auto'`` (with the learned
@@ -97,13 +105,14 @@ class HybridFactorModel(Scores):
     (1,)
     """
 
-    def __init__(self, rank=16, lam_user=5.0, lam_item=5.0, lam_map="auto", epochs=25, tol=1e-5,
+    def __init__(self, rank=16, rank_choice="held-out", lam_user=5.0, lam_item=5.0, lam_map="auto", epochs=25, tol=1e-5,
                  seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0,
                  launch_offset="learned", holdout=0.0,
                  biases=True, n_jobs=1, text_max_features=2000, text_min_df=2, text_ngrams=1,
                  tag_separator="|", engine="local", address=None, partitions=8,
                  shared_dir=None):
         self.rank = rank
+        self.rank_choice = rank_choice
         self.lam_user = lam_user
         self.lam_item = lam_item
         self.lam_map = lam_map
@@ -140,6 +149,8 @@ class HybridFactorModel(Scores):
                 raise InputError(f"{name} must be > 0, found {value!r}")
         if not (isinstance(self.rank, (int, np.integer)) and self.rank >= 1):
             raise InputError(f"rank must be a whole number >= 1, found {self.rank!r}")
+        if self.rank_choice not in ("held-out", "fixed"):
+            raise InputError(f"rank_choice must be 'held-out' or 'fixed', found {self.rank_choice!r}")
         if self.prior not in ("learned", "fixed"):
             raise InputError(f"prior must be 'learned' or 'fixed', found {self.prior!r}")
         if self.map_weighting not in ("none", "precision", "bias"):
@@ -195,6 +206,7 @@ class HybridFactorModel(Scores):
         r = ratings["rating"].to_numpy(float)
         train, valid = self._holdout_split(len(r))
         self.ratings_ = (u[train].astype(np.int32), i[train].astype(np.int32), r[train])
+        self._choose_rank()
         with training_data(self) as data:
             validate = None
             if valid.size:
@@ -203,7 +215,7 @@ class HybridFactorModel(Scores):
             weight = self._prior_weight(data)
             auto = self.lam_map == "auto"
             F, sigma2, sigma2_new = fit_factors(
-                data, self.attributes_, rank=self.rank, lam_user=self.lam_user, lam_item=self.lam_item,
+                data, self.attributes_, rank=self.rank_, lam_user=self.lam_user, lam_item=self.lam_item,
                 lam_map=1.0 if auto else float(self.lam_map), tune_map=auto and self.prior == "learned",
                 epochs=self.epochs, tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
                 biases=self.biases, n_jobs=self.n_jobs, validate=validate, on_epoch=on_epoch)
@@ -221,12 +233,24 @@ class HybridFactorModel(Scores):
                          "n_rated_items": int((self.item_counts_ > 0).sum()), "n_ratings": int(train.size),
                          "n_holdout": int(valid.size), "n_features": int(self.attributes_.shape[1]),
                          "epochs_run": len(F.history), "objective": last["objective"],
+                         "rank": self.rank_, "rank_path": [list(p) for p in self.rank_path_],
                          "train_rmse": last["train_rmse"],
                          "valid_rmse": last["valid_rmse"] if valid.size else None,
                          "sigma2": self.sigma2_, "sigma2_new": self.sigma2_new_, "lam_map": self.lam_map_,
                          "variance_scales": list(F.scales), "launch_offset": self.launch_offset_,
                          "seconds": time.perf_counter() - t0}
         return self
+
+    def _choose_rank(self):
+        """Set ``rank_`` and ``rank_path_`` (the rank search's levels; empty when fixed)."""
+        self.rank_, self.rank_path_ = int(self.rank), []
+        if self.rank_choice == "fixed":
+            return
+        lam_map = 1.0 if self.lam_map == "auto" else float(self.lam_map)
+        self.rank_, self.rank_path_ = search_rank(
+            self.ratings_, (len(self.user_ids_), len(self.item_ids_)), self.attributes_, most=int(self.rank),
+            lam_user=float(self.lam_user), lam_item=float(self.lam_item), lam_map=lam_map, biases=self.biases, seed=self.seed,
+            n_jobs=self.n_jobs)
 
     def _holdout_split(self, n):
         idx = np.arange(n)
@@ -249,7 +273,7 @@ class HybridFactorModel(Scores):
         if self.map_weighting == "none":
             return np.ones(len(counts))
         if self.map_weighting == "bias":   # (n, d): the bias coordinate's weight, ones elsewhere
-            weight = np.ones((len(counts), self.rank + 1))
+            weight = np.ones((len(counts), self.rank_ + 1))
             weight[:, 0] = 1.0 + counts / self.weight_half
             return weight
         # poorly rated items pull the map less (they are a selected, unlike set:
@@ -316,6 +340,13 @@ class HybridFactorModel(Scores):
     def prior_covariance_(self):
         """How far an item's block falls from its attribute projection (covariance)."""
         return self.sigma2_ * np.linalg.inv(self._fitted().P)
+
+    @property
+    def dimension_spread_(self):
+        """Standard deviation of the item prior along each vector dimension (the bias
+        left out): how much each dimension carries once the attributes are known."""
+        sd = np.sqrt(np.diag(self.prior_covariance_))
+        return sd[1:] if self.biases else sd
 
     @property
     def new_rating_precision_(self):

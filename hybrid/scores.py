@@ -48,7 +48,7 @@ class Scores:
         """Projected blocks ``W^T a`` of items from their attributes alone (the bias
         plus ``launch_offset_``: the prior mean of a new item).
 
-        Returns a DataFrame indexed by item with ``bias`` and ``f0..f{rank-1}``.
+        Returns a DataFrame indexed by item with ``bias`` and ``f0..f{rank_-1}``.
         """
         self._fitted()
         attributes = validate_attributes(attributes, None, self.features_._spec(), source="attributes",
@@ -57,7 +57,7 @@ class Scores:
         return self._frame(z, attributes.index)
 
     def _frame(self, z, index):
-        cols = (["bias"] if self.biases else []) + [f"f{j}" for j in range(self.rank)]
+        cols = (["bias"] if self.biases else []) + [f"f{j}" for j in range(self.rank_)]
         return pd.DataFrame(z, index=pd.Index(np.asarray(index, dtype=str), name="item"), columns=cols)
 
     def item_vectors(self) -> pd.DataFrame:

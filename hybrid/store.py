@@ -22,8 +22,8 @@ from .errors import InputError
 from .outputs import atomic_path
 
 FORMAT = "hybrid-model"
-VERSION = 2     # 2: the launch offset and which items carry it
-READS = (1, 2)  # a version-1 model was fitted without the offset: it reads as offset 0
+VERSION = 3        # 2: the launch offset and which items carry it; 3: the rank search
+READS = (1, 2, 3)  # version 1 was fitted without the offset (reads as offset 0); 1 and 2 at a fixed rank
 
 
 def _digest(arr: np.ndarray) -> str:
@@ -131,7 +131,8 @@ def load_model(path):
     from .train import Factors
 
     manifest, a = read_manifest(path)
-    model = HybridFactorModel(**manifest["params"])
+    # files before version 3 were fitted at exactly their rank
+    model = HybridFactorModel(**{"rank_choice": "fixed", **manifest["params"]})
     model.settings_ = manifest.get("settings")
     model.features_ = AttributeEncoder.from_state(manifest["features"])
     model.user_ids_, model.item_ids_ = a["user_ids"], a["item_ids"]
@@ -147,6 +148,8 @@ def load_model(path):
     else:
         model.launched_, model.launch_offset_ = a["launched"].astype(bool), float(manifest["launch_offset"])
     model.metrics_ = manifest["metrics"]
+    model.rank_ = int(manifest["metrics"].get("rank", model.rank))
+    model.rank_path_ = [tuple(p) for p in manifest["metrics"].get("rank_path", [])]
     model.extras_ = {k[len("extra_"):]: v for k, v in a.items() if k.startswith("extra_")}
     columns = manifest.get("table_columns", [])
     model.item_table_ = pd.DataFrame({c: a[f"table_{c}"] for c in columns},

@@ -48,8 +48,8 @@ def test_evaluate_table_on_the_tasting_club():
     club = tasting_club()
     params = {**model_params(load_config(DEMO_CONFIG)), "schema": club.schema}
     table = evaluate(club.ratings, club.lots, params, protocol="cold", folds=2)
-    assert table["method"].tolist() == ["global mean", "mean + user bias", "+ item bias from attributes",
-                                        "attribute neighbours", "hybrid"]
+    assert table["method"].tolist() == ["global mean", "mean + user bias", "mean + user + item biases",
+                                        "+ item bias from attributes", "attribute neighbours", "hybrid"]
     assert (table["folds"] == 2).all() and table["rmse_sd"].notna().all()
     by = table.set_index("method")
     assert by.loc["hybrid", "rmse_mean"] < by.loc["+ item bias from attributes", "rmse_mean"] \
@@ -58,3 +58,21 @@ def test_evaluate_table_on_the_tasting_club():
     few = evaluate(club.ratings, club.lots, params, protocol="few", folds=2, reveal=(1, 10))
     hyb = few[few["method"] == "hybrid"].set_index("n")["rmse_mean"]
     assert hyb[10] < hyb[1] < by.loc["hybrid", "rmse_mean"] + 0.02
+
+
+def test_biases_baseline_is_the_ridge_least_squares_solution():
+    # outside check (scipy.sparse.linalg.lsqr): with damp = sqrt(lam), lsqr minimises
+    # |X b - y|^2 + lam |b|^2 over [user one-hot, item one-hot] exactly the ridge the baseline fits
+    import scipy.sparse as sp
+    from scipy.sparse.linalg import lsqr
+
+    from hybrid.baselines import Biases
+
+    rng = np.random.default_rng(4)
+    u, i = rng.integers(0, 30, 400), rng.integers(0, 20, 400)
+    r = rng.normal(3.5, 1.0, 400) + 0.3 * (u % 3) - 0.2 * (i % 4)
+    b = Biases(3.0).fit(u, i, r, sp.csr_matrix((20, 1)), 30)
+    X = sp.hstack([sp.csr_matrix((np.ones(400), (np.arange(400), u)), shape=(400, 30)),
+                   sp.csr_matrix((np.ones(400), (np.arange(400), i)), shape=(400, 20))]).tocsr()
+    ref = lsqr(X, r - r.mean(), damp=np.sqrt(3.0), atol=1e-12, btol=1e-12, iter_lim=10_000)[0]
+    assert np.allclose(np.concatenate([b.b_u_, b.b_i_]), ref, atol=1e-6)
