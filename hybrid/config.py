@@ -39,7 +39,7 @@ DEFAULTS: dict[str, dict[str, Any]] = {
     },
     "model": {
         "rank": 16,
-        "rank_choice": "held-out",
+        "rank_choice": "fixed",
         "lam_user": 5.0,
         "lam_item": 5.0,
         "lam_map": "auto",

@@ -28,8 +28,8 @@ def test_validation_split_is_seeded_and_its_own_stream():
 def test_search_finds_the_planted_rank_and_a_larger_rank_changes_nothing(club):
     # the club's ratings come from a rank-5 factor model (internal check): the search must not
     # stop at a trivial rank, and once it has stopped, a larger allowed rank gives the same model
-    small = HybridFactorModel(rank=32, epochs=6, schema=club.schema).fit(club.ratings, club.lots)
-    large = HybridFactorModel(rank=64, epochs=6, schema=club.schema).fit(club.ratings, club.lots)
+    small = HybridFactorModel(rank=32, rank_choice="held-out", epochs=6, schema=club.schema).fit(club.ratings, club.lots)
+    large = HybridFactorModel(rank=64, rank_choice="held-out", epochs=6, schema=club.schema).fit(club.ratings, club.lots)
     assert 3 <= small.rank_ <= 12 and small.rank_path_[-1][0] < 32
     assert small.rank_path_ == large.rank_path_ and small.rank_ == large.rank_
     assert np.array_equal(small.item_blocks_, large.item_blocks_)
