@@ -36,6 +36,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from .mapsolve import map_solver
+from .train import Factors, RatingData, _epochs
+
 LADDER = (1, 2, 3, 4, 6, 8, 12, 16, 24, 32, 48, 64, 96, 128)
 
 
@@ -65,8 +68,6 @@ def _held_rmse(F, u, i, y):
 
 def _widen(F, d, rng, n_features):
     """``F`` with zero user columns and small random item columns added up to ``d``."""
-    from .train import Factors
-
     k = d - F.item.shape[1]
     n_users, n_items = len(F.user), len(F.item)
     return Factors(user=np.hstack([F.user, np.zeros((n_users, k))]),
@@ -113,9 +114,6 @@ def search_rank(codes, shape, A, *, most, lam_user, lam_item, lam_map, biases, s
     >>> [r for r, _ in path], rank == min(path, key=lambda p: p[1])[0]
     ([1, 2, 3], True)
     """
-    from .mapsolve import map_solver
-    from .train import Factors, RatingData, _epochs
-
     u, i, r = (np.asarray(c) for c in codes)
     held = validation_split(len(r), fraction, seed)
     data = RatingData.from_codes(u[~held], i[~held], r[~held], *shape)
