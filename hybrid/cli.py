@@ -76,7 +76,8 @@ def _summary(model) -> dict:
             "rated items": int((model.item_counts_ > 0).sum()), "ratings": int(model.item_counts_.sum()),
             "held out": m["n_holdout"], "features": m["n_features"],
             "rank fitted": model.rank_, "rank allowed": model.rank,
-            "rank search (held-out RMSE by rank)": ", ".join(f"{r}: {e:.4f}" for r, e in model.rank_path_) or "off",
+            "rank search (held-out RMSE by rank)":
+                ", ".join(f"{r}: {e:.4f}" for r, e in model.rank_path_) or "off",
             "item prior spread by dimension (sd)": ", ".join(f"{v:.3f}" for v in model.dimension_spread_),
             "map penalty": model.lam_map_,
             "epochs run": m["epochs_run"], "objective": round(m["objective"], 3),

@@ -15,8 +15,8 @@ from .ranksearch import search_rank
 from .scores import Scores
 from .train import Factors, RatingData, fit_factors, objective
 
-_PARAMS = ("rank", "rank_choice", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema", "prior",
-           "map_weighting", "weight_half", "launch_offset", "holdout", "biases", "n_jobs",
+_PARAMS = ("rank", "rank_choice", "lam_user", "lam_item", "lam_map", "epochs", "tol", "seed", "schema",
+           "prior", "map_weighting", "weight_half", "launch_offset", "holdout", "biases", "n_jobs",
            "text_max_features", "text_min_df", "text_ngrams", "tag_separator", "engine", "address",
            "partitions", "shared_dir")
 
@@ -108,8 +108,8 @@ class HybridFactorModel(Scores):
     (1,)
     """
 
-    def __init__(self, rank=16, rank_choice="fixed", lam_user=5.0, lam_item=5.0, lam_map="auto", epochs=25, tol=1e-5,
-                 seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0,
+    def __init__(self, rank=16, rank_choice="fixed", lam_user=5.0, lam_item=5.0, lam_map="auto", epochs=25,
+                 tol=1e-5, seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0,
                  launch_offset="learned", holdout=0.0,
                  biases=True, n_jobs=1, text_max_features=2000, text_min_df=2, text_ngrams=1,
                  tag_separator="|", engine="local", address=None, partitions=8,
@@ -250,10 +250,10 @@ class HybridFactorModel(Scores):
         if self.rank_choice == "fixed":
             return
         lam_map = 1.0 if self.lam_map == "auto" else float(self.lam_map)
+        shape = (len(self.user_ids_), len(self.item_ids_))
         self.rank_, self.rank_path_ = search_rank(
-            self.ratings_, (len(self.user_ids_), len(self.item_ids_)), self.attributes_, most=int(self.rank),
-            lam_user=float(self.lam_user), lam_item=float(self.lam_item), lam_map=lam_map, biases=self.biases, seed=self.seed,
-            n_jobs=self.n_jobs)
+            self.ratings_, shape, self.attributes_, most=int(self.rank), lam_user=float(self.lam_user),
+            lam_item=float(self.lam_item), lam_map=lam_map, biases=self.biases, seed=self.seed, n_jobs=self.n_jobs)
 
     def _holdout_split(self, n):
         idx = np.arange(n)
