@@ -40,8 +40,8 @@ DEFAULTS: dict[str, dict[str, Any]] = {
     "model": {
         "rank": 16,
         "rank_choice": "fixed",
-        "lam_user": 5.0,
-        "lam_item": 5.0,
+        "lam_user": "auto",
+        "lam_item": "auto",
         "lam_map": "auto",
         "epochs": 25,
         "tol": 1e-5,
@@ -122,7 +122,7 @@ def load_config(path: str | Path | None = None, overrides: dict | None = None) -
     --------
     >>> cfg = load_config(overrides={"model": {"rank": 8}})
     >>> cfg["model"]["rank"], cfg["model"]["lam_user"]
-    (8, 5.0)
+    (8, 'auto')
     """
     cfg = copy.deepcopy(DEFAULTS)
     if path is not None:
@@ -168,16 +168,21 @@ def column_schema(cfg: dict) -> dict[str, dict]:
     return out
 
 
+def _penalty_ok(value) -> bool:
+    """A penalty is ``'auto'`` (chosen on held-out ratings) or a number > 0."""
+    if isinstance(value, str):
+        return value == "auto"
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and value > 0
+
+
 def validate(cfg: dict, source: str) -> None:
     """Check value types and ranges that would otherwise fail deep inside."""
     m = cfg["model"]
     checks = [
         (isinstance(m["rank"], int) and m["rank"] >= 1, "model.rank", "a whole number >= 1"),
         (m["rank_choice"] in ("held-out", "fixed"), "model.rank_choice", "'held-out' or 'fixed'"),
-        (m["lam_user"] > 0, "model.lam_user", "a number > 0"),
-        (m["lam_item"] > 0, "model.lam_item", "a number > 0"),
-        (m["lam_map"] == "auto" or (not isinstance(m["lam_map"], str) and m["lam_map"] > 0),
-         "model.lam_map", "a number > 0 or 'auto'"),
+        *[(_penalty_ok(m[name]), f"model.{name}", "a number > 0 or 'auto'")
+          for name in ("lam_user", "lam_item", "lam_map")],
         (isinstance(m["epochs"], int) and m["epochs"] >= 1, "model.epochs", "a whole number >= 1"),
         (m["prior"] in ("fixed", "learned"), "model.prior", "'fixed' or 'learned'"),
         (m["map_weighting"] in ("none", "precision", "bias"), "model.map_weighting", "'none', 'precision' or 'bias'"),
@@ -210,8 +215,8 @@ def model_params(cfg: dict) -> dict:
     m = cfg["model"]
     return {
         "rank": m["rank"], "rank_choice": m["rank_choice"],
-        "lam_user": float(m["lam_user"]), "lam_item": float(m["lam_item"]),
-        "lam_map": m["lam_map"] if m["lam_map"] == "auto" else float(m["lam_map"]), "epochs": m["epochs"], "tol": float(m["tol"]),
+        **{name: m[name] if m[name] == "auto" else float(m[name]) for name in ("lam_user", "lam_item", "lam_map")},
+        "epochs": m["epochs"], "tol": float(m["tol"]),
         "seed": m["seed"], "prior": m["prior"], "map_weighting": m["map_weighting"],
         "weight_half": float(m["weight_half"]), "launch_offset": m["launch_offset"],
         "holdout": float(m["holdout"]), "n_jobs": m["n_jobs"],

@@ -11,6 +11,7 @@ from .errors import InputError
 from .features import AttributeEncoder
 from .cluster import training_data
 from .launch import launch_offset
+from .penalties import NAMES as PENALTIES, START, choose_penalties
 from .ranksearch import search_rank
 from .scores import Scores
 from .train import Factors, RatingData, fit_factors, objective
@@ -38,11 +39,13 @@ class HybridFactorModel(Scores):
         is opt-in for now: on MovieLens it makes every rank from 2 to 64 give
         the same model, but it stops at rank 1 to 2 where 3 to 4 fit best
         (:mod:`hybrid.ranksearch`).
-    lam_user, lam_item, lam_map : float
+    lam_user, lam_item, lam_map : float or 'auto'
         Regularisation of user blocks, of item blocks around their attribute
-        projection, and of the map.  ``lam_map='auto'`` (with the learned
-        prior) chooses the map's penalty on held-out items; the value used is
-        ``lam_map_``.
+        projection (the fixed prior, and the learned prior's starting point),
+        and of the map.  ``'auto'`` (the default) chooses the penalty on a
+        seeded tenth of the training ratings (:mod:`hybrid.penalties`), so it
+        grows with the rank; a number fixes it.  The values used are
+        ``lam_user_``, ``lam_item_`` and ``lam_map_``.
     epochs : int
         Most alternating epochs.
     tol : float
@@ -54,8 +57,10 @@ class HybridFactorModel(Scores):
         ``{column: {"type": ..., "weight": w}}``; ``None`` uses no attributes
         beyond an intercept.
     prior : {'learned', 'fixed'}
-        ``'learned'`` re-estimates the item prior covariance by EM between
-        epochs; ``'fixed'`` keeps ``lam_item * I``.
+        ``'learned'`` estimates how far items fall from their projection
+        (cross-fitted EM, :mod:`hybrid.prior`) for the planner's uncertainty
+        (``prior_covariance_``); ``'fixed'`` takes ``sigma2_ / lam_item_ * I``.
+        The fit itself uses the chosen penalties either way.
     map_weighting : {'none', 'precision', 'bias'}
         ``'precision'`` weights each item's prior term, and so its pull on the
         map, by ``n / (n + weight_half)`` for an item with ``n`` ratings: items
@@ -108,7 +113,7 @@ class HybridFactorModel(Scores):
     (1,)
     """
 
-    def __init__(self, rank=16, rank_choice="fixed", lam_user=5.0, lam_item=5.0, lam_map="auto", epochs=25,
+    def __init__(self, rank=16, rank_choice="fixed", lam_user="auto", lam_item="auto", lam_map="auto", epochs=25,
                  tol=1e-5, seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0,
                  launch_offset="learned", holdout=0.0,
                  biases=True, n_jobs=1, text_max_features=2000, text_min_df=2, text_ngrams=1,
@@ -146,10 +151,10 @@ class HybridFactorModel(Scores):
     def _check_params(self):
         for name in ("lam_user", "lam_item", "lam_map"):
             value = getattr(self, name)
-            if name == "lam_map" and value == "auto":
+            if isinstance(value, str) and value == "auto":
                 continue
             if not (isinstance(value, (int, float, np.floating)) and value > 0):
-                raise InputError(f"{name} must be > 0, found {value!r}")
+                raise InputError(f"{name} must be a number > 0 or 'auto', found {value!r}")
         if not (isinstance(self.rank, (int, np.integer)) and self.rank >= 1):
             raise InputError(f"rank must be a whole number >= 1, found {self.rank!r}")
         if self.rank_choice not in ("held-out", "fixed"):
@@ -210,22 +215,19 @@ class HybridFactorModel(Scores):
         train, valid = self._holdout_split(len(r))
         self.ratings_ = (u[train].astype(np.int32), i[train].astype(np.int32), r[train])
         self._choose_rank()
+        self._choose_penalties()
         with training_data(self) as data:
             validate = None
             if valid.size:
                 uv, iv, rv = u[valid], i[valid], r[valid]
                 validate = lambda F: float(np.sqrt(np.mean((rv - self._predict_codes(F, data.mu, uv, iv)) ** 2)))
             weight = self._prior_weight(data)
-            auto = self.lam_map == "auto"
             F, sigma2, sigma2_new = fit_factors(
-                data, self.attributes_, rank=self.rank_, lam_user=self.lam_user, lam_item=self.lam_item,
-                lam_map=1.0 if auto else float(self.lam_map), tune_map=auto and self.prior == "learned",
-                epochs=self.epochs, tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
+                data, self.attributes_, rank=self.rank_, lam_user=self.lam_user_, lam_item=self.lam_item_,
+                lam_map=self.lam_map_, epochs=self.epochs, tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
                 biases=self.biases, n_jobs=self.n_jobs, validate=validate, on_epoch=on_epoch)
-            lam_map = float(F.lam_map)
-            final = objective(data, F, self.attributes_, self.lam_user, lam_map, weight)
+            final = objective(data, F, self.attributes_, self.lam_user_, self.lam_map_, weight)
         self._set_factors(F, data.mu, sigma2, weight, sigma2_new)
-        self.lam_map_ = lam_map
         self._set_launch(weight)
         last = dict(F.history[-1])
         # the final state (after the learned prior and the last item step) is what is reported
@@ -239,21 +241,40 @@ class HybridFactorModel(Scores):
                          "rank": self.rank_, "rank_path": [list(p) for p in self.rank_path_],
                          "train_rmse": last["train_rmse"],
                          "valid_rmse": last["valid_rmse"] if valid.size else None,
-                         "sigma2": self.sigma2_, "sigma2_new": self.sigma2_new_, "lam_map": self.lam_map_,
+                         "sigma2": self.sigma2_, "sigma2_new": self.sigma2_new_, "lam_user": self.lam_user_,
+                         "lam_item": self.lam_item_, "lam_map": self.lam_map_,
+                         "penalty_path": [[p, e] for p, e in self.penalty_path_],
                          "variance_scales": list(F.scales), "launch_offset": self.launch_offset_,
                          "seconds": time.perf_counter() - t0}
         return self
+
+    def _choose_penalties(self):
+        """Set ``lam_user_``, ``lam_item_``, ``lam_map_`` and ``penalty_path_`` (empty when all fixed)."""
+        given = {name: getattr(self, name) for name in PENALTIES}
+        self.penalty_path_ = []
+        if all(given[name] != "auto" for name in PENALTIES):
+            chosen = {name: float(v) for name, v in given.items()}
+        else:
+            shape = (len(self.user_ids_), len(self.item_ids_))
+            chosen, self.penalty_path_ = choose_penalties(
+                self.ratings_, shape, self.attributes_, rank=self.rank_, given=given, biases=self.biases,
+                seed=self.seed, n_jobs=self.n_jobs)
+        for name in PENALTIES:
+            setattr(self, name + "_", float(chosen[name]))
 
     def _choose_rank(self):
         """Set ``rank_`` and ``rank_path_`` (the rank search's levels; empty when fixed)."""
         self.rank_, self.rank_path_ = int(self.rank), []
         if self.rank_choice == "fixed":
             return
-        lam_map = 1.0 if self.lam_map == "auto" else float(self.lam_map)
         shape = (len(self.user_ids_), len(self.item_ids_))
+        # the levels use the given penalties, or the search's starting ones; the penalties
+        # are then chosen at the rank found (so any larger allowed rank gives the same fit)
+        lam = {name: START[name] if getattr(self, name) == "auto" else float(getattr(self, name))
+               for name in PENALTIES}
         self.rank_, self.rank_path_ = search_rank(
-            self.ratings_, shape, self.attributes_, most=int(self.rank), lam_user=float(self.lam_user),
-            lam_item=float(self.lam_item), lam_map=lam_map, biases=self.biases, seed=self.seed, n_jobs=self.n_jobs)
+            self.ratings_, shape, self.attributes_, most=int(self.rank), **lam, biases=self.biases,
+            seed=self.seed, n_jobs=self.n_jobs)
 
     def _holdout_split(self, n):
         idx = np.arange(n)
@@ -341,8 +362,10 @@ class HybridFactorModel(Scores):
 
     @property
     def prior_covariance_(self):
-        """How far an item's block falls from its attribute projection (covariance)."""
-        return self.sigma2_ * np.linalg.inv(self._fitted().P)
+        """How far an item's block falls from its attribute projection (covariance): the
+        learned spread with ``prior='learned'``, else ``sigma2_ * P^-1``."""
+        F = self._fitted()
+        return F.spread if F.spread is not None else self.sigma2_ * np.linalg.inv(F.P)
 
     @property
     def dimension_spread_(self):

@@ -87,7 +87,6 @@ def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-5, wei
 
 
 ROUNDS = 10
-LAM_MAP_GRID = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0, 300.0, 1000.0)
 
 
 def _fold(data, F, A, weight, held, lam_user, lam_map, rounds, n_jobs):
@@ -116,13 +115,12 @@ def _fold(data, F, A, weight, held, lam_user, lam_map, rounds, n_jobs):
 
 
 def learn_prior(data, F, A, weight, sigma2, lam_user, lam_map, seed, n_jobs=1, rounds=ROUNDS,
-                tune_map=False, recalibrate=True, folds=2):
+                recalibrate=True, folds=2):
     """The item prior precision ``P = sigma^2 Psi^-1``, ``Psi`` cross-fitted (module doc).
 
     The well-rated items are split into ``folds``; each fold is held out in
-    turn.  With ``tune_map`` the map penalty is also chosen on the held-out
-    items; with ``recalibrate`` the prior and noise scales are checked on them
-    too (:mod:`hybrid.recalibrate`).  Returns ``(Psi, lam_map, sigma2_new,
+    turn.  With ``recalibrate`` the prior and noise scales are checked on the
+    held-out items too (:mod:`hybrid.recalibrate`).  Returns ``(Psi, sigma2_new,
     (kappa_prior, kappa_noise))``: the prior covariance and the variance of a
     new rating, both recalibrated.
     """
@@ -130,17 +128,6 @@ def learn_prior(data, F, A, weight, sigma2, lam_user, lam_map, seed, n_jobs=1, r
     held = held_out_set(counts, seed, fraction=1.0, most=400 * folds)
     parts = [_fold(data, F, A, weight, h, lam_user, lam_map, rounds, n_jobs)
              for h in np.array_split(held, folds) if len(h)]
-    if tune_map:
-        def error(lam):
-            total = 0.0
-            for f in parts:
-                # the held-out items' blocks from their ratings alone (a faint prior keeps them finite)
-                z = np.linalg.solve(f["grams"] + 1e-3 * f["G"].P, f["rhs"][..., None])[..., 0]
-                W = f["solver"].with_penalty(lam).solve(f["G"].item[f["rated"]], f["G"].P)
-                D = z - np.asarray(A[f["held"]] @ W)
-                total += float(np.einsum("ij,jk,ik->", D, f["G"].P, D))
-            return total
-        lam_map = min(LAM_MAP_GRID, key=error)
     for f in parts:
         W = f["solver"].with_penalty(lam_map).solve(f["G"].item[f["rated"]], f["G"].P)
         f["m"] = np.asarray(A[f["held"]] @ W)
@@ -152,4 +139,4 @@ def learn_prior(data, F, A, weight, sigma2, lam_user, lam_map, seed, n_jobs=1, r
         from .recalibrate import variance_scales
         scales = variance_scales(parts, Psi, sigma2, 1 if F.biases else 0, seed=seed)
     kp, kn = scales
-    return kp * Psi, lam_map, kn * sigma2, scales
+    return kp * Psi, kn * sigma2, scales

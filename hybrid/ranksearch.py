@@ -59,7 +59,7 @@ def validation_split(n: int, fraction: float, seed: int) -> np.ndarray:
     return np.random.default_rng([int(seed), 7]).random(n) < fraction
 
 
-def _held_rmse(F, u, i, y):
+def held_rmse(F, u, i, y):
     """RMSE of ratings ``y`` (less the mean) at codes ``u``, ``i``."""
     pred = np.einsum("nk,nk->n", F.user[u], F.item[i]) if not F.biases else (
         np.einsum("nk,nk->n", F.user[u, 1:], F.item[i, 1:]) + F.user[u, 0] + F.item[i, 0])
@@ -76,7 +76,7 @@ def _widen(F, d, rng, n_features):
 
 
 def search_rank(codes, shape, A, *, most, lam_user, lam_item, lam_map, biases, seed, fraction=0.1,
-                epochs=8, patience=2, n_jobs=1):
+                epochs=8, patience=2, n_jobs=1, min_gain=0.0):
     """Grow a model along :func:`ladder` and return ``(rank, path)``.
 
     Parameters
@@ -134,9 +134,9 @@ def search_rank(codes, shape, A, *, most, lam_user, lam_item, lam_map, biases, s
             F = _widen(F, d, rng, A.shape[1])
             F.P = lam_item * np.eye(d)
         _epochs(data, F, A, lam_user, lam_map, weight, rated, solver, epochs, 0.0, n_jobs, None, None)
-        err = _held_rmse(F, u[held], i[held], y)
+        err = held_rmse(F, u[held], i[held], y)
         path.append((rank, err))
-        if best is None or err < best[1]:
+        if best is None or err < best[1] * (1.0 - min_gain):
             best, stale = (rank, err), 0
         else:
             stale += 1

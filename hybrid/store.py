@@ -22,8 +22,8 @@ from .errors import InputError
 from .outputs import atomic_path
 
 FORMAT = "hybrid-model"
-VERSION = 3        # 2: the launch offset and which items carry it; 3: the rank search
-READS = (1, 2, 3)  # version 1 was fitted without the offset (reads as offset 0); 1 and 2 at a fixed rank
+VERSION = 4           # 2: the launch offset and which items carry it; 3: the rank search; 4: chosen penalties
+READS = (1, 2, 3, 4)  # version 1 was fitted without the offset (reads as offset 0); 1 and 2 at a fixed rank
 
 
 def _digest(arr: np.ndarray) -> str:
@@ -39,6 +39,8 @@ def _arrays(model) -> dict[str, np.ndarray]:
               "prior_weight": model.prior_weight_, "launched": model.launched_, "ratings_user": u, "ratings_item": i,
               "ratings_value": r, "attr_data": A.data, "attr_indices": A.indices,
               "attr_indptr": A.indptr, "attr_shape": np.array(A.shape, dtype=np.int64)}
+    if F.spread is not None:
+        arrays["prior_covariance"] = F.spread
     table = getattr(model, "item_table_", None)
     if table is not None:
         for col in table.columns:
@@ -140,9 +142,13 @@ def load_model(path):
     model.attributes_ = sp.csr_matrix((a["attr_data"], a["attr_indices"], a["attr_indptr"]),
                                       shape=tuple(a["attr_shape"]))
     F = Factors(a["user_blocks"], a["item_blocks"], a["map"], a["prior_precision"],
-                bool(manifest["biases"]), list(manifest["history"]))
+                bool(manifest["biases"]), list(manifest["history"]), spread=a.get("prior_covariance"))
     model._set_factors(F, manifest["mu"], manifest["sigma2"], a["prior_weight"], manifest["sigma2_new"])
-    model.lam_map_ = manifest["metrics"].get("lam_map")
+    # files before version 4 were fitted with the penalties their settings name
+    metrics = manifest["metrics"]
+    for name in ("lam_user", "lam_item", "lam_map"):
+        setattr(model, name + "_", float(metrics.get(name, manifest["params"][name])))
+    model.penalty_path_ = [tuple(p) for p in metrics.get("penalty_path", [])]
     if manifest["format_version"] == 1:   # no offset then: new items sat at their projection
         model.launched_, model.launch_offset_ = model.item_counts_ == 0, 0.0
     else:

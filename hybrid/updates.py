@@ -42,7 +42,7 @@ def fold_in(model, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None
     touched_u, touched_i = np.unique(u), np.unique(i)
     if model.map_weighting != "none":
         model.prior_weight_[touched_i] = model._prior_weight(data)[touched_i]
-    user_step(data, F, model.lam_user, rows=touched_u)
+    user_step(data, F, model.lam_user_, rows=touched_u)
     item_step(data, F, model.attributes_, model.prior_weight_, rows=touched_i,
               shift=model._prior_shift(touched_i))
     model.item_counts_ = np.bincount(model.ratings_[1], minlength=len(model.item_ids_))

@@ -4,6 +4,7 @@ Items with 60 or more ratings are probed: trained without any of their
 ratings, solved with all of them (the full-data list) and with only n, and the
 planner's prediction at n compared with the actual overlap.
 """
+import pandas as pd
 import pytest
 
 from hybrid.calibration import calibrate
@@ -18,10 +19,14 @@ def test_calibration_on_the_tasting_club():
     club = tasting_club()
     params = model_params(load_config(DEMO_CONFIG))
     params.update(holdout=0.0, schema=club.schema)
-    table = calibrate(club.ratings, club.lots, params, n_probe=60)
-    assert table["n"].tolist() == [0, 2, 5, 10, 20, 40]
-    assert table["actual"].is_monotonic_increasing or table["actual"].iloc[-1] > table["actual"].iloc[0]
-    assert (table["gap"] <= 0.05).all(), table
+    # one draw of 60 probes has a standard error near 0.025 on each mean overlap, so a
+    # 0.05 bound on a single draw fails by chance (the release before auto penalties
+    # failed on seed 1 with a gap of 0.068); three probe draws pooled halve the noise
+    tables = [calibrate(club.ratings, club.lots, params, n_probe=60, seed=s) for s in range(3)]
+    assert all(t["n"].tolist() == [0, 2, 5, 10, 20, 40] for t in tables)
+    table = pd.concat(tables).groupby("n")[["predicted", "actual"]].mean()
+    assert table["actual"].iloc[-1] > table["actual"].iloc[0] + 0.3, table
+    assert ((table["predicted"] - table["actual"]).abs() <= 0.05).all(), table
 
 
 @pytest.mark.slow

@@ -32,7 +32,7 @@ def test_covariance_is_bayesian_linear_regression(fixed_model):
     m = fixed_model
     item = int(np.argmax(m.item_counts_))
     B, _ = _rows(m, item)
-    beta, alpha = 1.0 / m.sigma2_, m.lam_item / m.sigma2_
+    beta, alpha = 1.0 / m.sigma2_, m.lam_item_ / m.sigma2_
     S_N = np.linalg.inv(alpha * np.eye(B.shape[1]) + beta * B.T @ B)
     mine = covariances(m, item_grams(m, [item]), m.prior_weight_[[item]])[0]
     assert np.allclose(mine, S_N, rtol=1e-10)

@@ -32,7 +32,7 @@ def test_manifest_is_json_with_version_and_checksums(saved):
     with zipfile.ZipFile(saved) as zf:
         manifest = json.loads(zf.read("manifest.json"))
         names = zf.namelist()
-    assert manifest["format"] == "hybrid-model" and manifest["format_version"] == 3
+    assert manifest["format"] == "hybrid-model" and manifest["format_version"] == 4
     assert all(n == "manifest.json" or n.endswith(".npy") for n in names)
     assert len(manifest["checksum"]) == 64
     for meta in manifest["arrays"].values():

@@ -43,17 +43,17 @@ def test_every_half_step_never_increases_the_objective(club):
     weight = np.ones(len(model.item_ids_))
     rated = model.item_counts_ > 0
     solver = MapSolver(A[rated], weight[rated], model.lam_map_)
-    values = [objective(data, F, A, model.lam_user, model.lam_map_, weight)[0]]
+    values = [objective(data, F, A, model.lam_user_, model.lam_map_, weight)[0]]
     rng = np.random.default_rng(0)
     for epoch in range(6):
         if epoch == 3:  # any other prior (as the learned one is): half-steps still descend under it
             M = rng.normal(size=F.P.shape)
             F.P = M @ M.T + np.eye(len(M))
-            values.append(objective(data, F, A, model.lam_user, model.lam_map_, weight)[0])
-        for step in (lambda: user_step(data, F, model.lam_user), lambda: item_step(data, F, A, weight),
+            values.append(objective(data, F, A, model.lam_user_, model.lam_map_, weight)[0])
+        for step in (lambda: user_step(data, F, model.lam_user_), lambda: item_step(data, F, A, weight),
                      lambda: map_step(F, A, rated, solver)):
             step()
-            values.append(objective(data, F, A, model.lam_user, model.lam_map_, weight)[0])
+            values.append(objective(data, F, A, model.lam_user_, model.lam_map_, weight)[0])
             assert values[-1] <= values[-2] * (1 + 1e-12), (epoch, values[-2:])
     assert values[-1] < values[0]
 
@@ -63,10 +63,10 @@ def test_map_step_equals_sklearn_ridge(fitted):
     # alpha = lam_map / lam_item for the isotropic prior lam_item * I
     m = fitted
     F = Factors(m.user_blocks_.copy(), m.item_blocks_.copy(), m.map_.copy(),
-                m.lam_item * np.eye(m.rank + 1))
+                m.lam_item_ * np.eye(m.rank + 1))
     rated = m.item_counts_ > 0
     map_step(F, m.attributes_, rated, MapSolver(m.attributes_[rated], np.ones(rated.sum()), m.lam_map_))
-    ref = Ridge(alpha=m.lam_map_ / m.lam_item, fit_intercept=False, solver="svd").fit(
+    ref = Ridge(alpha=m.lam_map_ / m.lam_item_, fit_intercept=False, solver="svd").fit(
         m.attributes_[rated].toarray(), m.item_blocks_[rated])
     assert np.allclose(F.W, ref.coef_.T, atol=1e-8)
     assert np.allclose(F.item[~rated], m.attributes_[~rated] @ F.W)
@@ -97,12 +97,12 @@ def test_bias_weighting_keeps_every_half_step_descending(club):
     rng = np.random.default_rng(0)
     M = rng.normal(size=(4, 4))
     F.P = scipy.linalg.block_diag(2.0, M @ M.T + np.eye(4))    # a prior coupling no bias with a vector
-    values = [objective(data, F, A, model.lam_user, model.lam_map_, weight)[0]]
+    values = [objective(data, F, A, model.lam_user_, model.lam_map_, weight)[0]]
     for _ in range(4):
-        for step in (lambda: user_step(data, F, model.lam_user), lambda: item_step(data, F, A, weight),
+        for step in (lambda: user_step(data, F, model.lam_user_), lambda: item_step(data, F, A, weight),
                      lambda: map_step(F, A, rated, solver)):
             step()
-            values.append(objective(data, F, A, model.lam_user, model.lam_map_, weight)[0])
+            values.append(objective(data, F, A, model.lam_user_, model.lam_map_, weight)[0])
             assert values[-1] <= values[-2] * (1 + 1e-12), values[-2:]
     # the map's bias column is a ridge regression of the item biases weighted by 1 + n / 3
     # (reference: sklearn.linear_model.Ridge with sample_weight), its vector columns unweighted
@@ -164,11 +164,11 @@ def test_user_step_equals_sklearn_ridge(fitted):
     m = fitted
     data = m._data()
     F = Factors(m.user_blocks_.copy(), m.item_blocks_, m.map_, m.prior_precision_)
-    user_step(data, F, m.lam_user)
+    user_step(data, F, m.lam_user_)
     row = data.by_user[7]
     X = np.hstack([np.ones((row.nnz, 1)), m.item_blocks_[row.indices, 1:]])
     y = row.data - m.item_blocks_[row.indices, 0]
-    ref = Ridge(alpha=m.lam_user, fit_intercept=False).fit(X, y)
+    ref = Ridge(alpha=m.lam_user_, fit_intercept=False).fit(X, y)
     assert np.allclose(F.user[7], ref.coef_, atol=1e-10)
 
 
@@ -210,7 +210,7 @@ def test_projected_vectors_recover_the_true_ones():
 
 
 def test_learned_prior_is_symmetric_positive_definite(fitted):
-    P = fitted.prior_precision_
+    P = fitted.prior_covariance_
     assert np.allclose(P, P.T) and np.linalg.eigvalsh(P).min() > 0
     assert not np.allclose(P, P[0, 0] * np.eye(len(P)))  # it did learn something anisotropic
 
@@ -256,7 +256,7 @@ def test_fold_in_resolves_only_touched_rows(club):
 
 def test_bad_hyper_parameters_named(club):
     from hybrid.errors import InputError
-    with pytest.raises(InputError, match="lam_user must be > 0, found -1"):
+    with pytest.raises(InputError, match="lam_user must be a number > 0 or .auto., found -1"):
         HybridFactorModel(lam_user=-1).fit(club.ratings, club.lots)
 
 
