@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import InputError
+from .limits import PLAN
 
 DEFAULTS: dict[str, dict[str, Any]] = {
     "ratings": {
@@ -191,9 +192,8 @@ def validate(cfg: dict, source: str) -> None:
         (cfg["ratings"]["duplicates"] in ("error", "last"), "ratings.duplicates", "'error' or 'last'"),
         (len(cfg["ratings"]["scale"]) == 2 and cfg["ratings"]["scale"][0] < cfg["ratings"]["scale"][1],
          "ratings.scale", "[low, high] with low < high"),
-        (0 < cfg["plan"]["target"] <= 1, "plan.target", "a fraction in (0, 1]"),
-        (cfg["plan"]["responders"] in ("active", "likely"), "plan.responders", "'active' or 'likely'"),
-        (cfg["plan"]["aim"] in ("reach", "gain"), "plan.aim", "'reach' or 'gain'"),
+        *[(PLAN[name][0](value), f"plan.{name}", PLAN[name][1])
+          for name, value in cfg["plan"].items() if name in PLAN],
         (cfg["engine"]["kind"] in ("local", "dask"), "engine.kind", "'local' or 'dask'"),
         (isinstance(cfg["engine"]["address"], str), "engine.address", "a scheduler address such as "
          "'tcp://10.0.0.5:8786', or '' to start a local cluster"),

@@ -17,6 +17,7 @@ import pandas as pd
 
 from .campaign import (AIMS, allocate_gain, allocate_reach, asks_table, choose_askees, propensity)
 from .errors import InputError
+from .limits import check_plan
 from .posterior import covariances, item_grams, stability, vector_part, vector_weight
 
 GRID = np.array([0, 1, 2, 3, 5, 8, 12, 20, 30, 50, 80, 120, 200, 300, 500])
@@ -77,6 +78,7 @@ class Assessor:
 
     def __init__(self, model, k=10, draws=64, seed=0, pool_min_ratings=20, responders="active",
                  responder_threshold=None, pool=None):
+        check_plan(k=k, draws=draws, seed=seed)   # k reaches a compiled kernel: never let 0 through
         self.model = model
         self.k = k
         off = 1 if model.biases else 0
@@ -291,10 +293,9 @@ def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, see
     >>> sorted(p.items["status"].unique())[0] in ("no ratings yet", "trusted", "under-covered")
     True
     """
-    if aim not in AIMS:
-        raise InputError(f"aim must be one of {', '.join(AIMS)}, found {aim!r}")
-    if not 0 < target <= 1:
-        raise InputError(f"target must be in (0, 1], found {target!r}")
+    check_plan(target=target, k=k, budget=budget, per_user=per_user, per_item=per_item, seed=seed,
+               draws=draws, max_needed=max_needed, aim=aim, responders=responders,
+               responder_threshold=responder_threshold, pool_min_ratings=pool_min_ratings)
     threshold = None
     if responders == "likely":
         # the liked level of the model's settings, when it has them (library models may not)

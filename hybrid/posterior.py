@@ -177,6 +177,12 @@ def _full_pool(X, pool, c2, listed, exclude, k, n_jobs=1):
     draws' running top-k by a compiled loop, so no draw x pool table is ever
     held.  Threads share the draws.
     """
+    # the compiled fold indexes without bounds checks: refuse what would make it write
+    # outside its arrays (k = 0 once did) before it runs
+    if not 1 <= k < len(pool) or len(listed) != len(X) or len(exclude) != len(X) or \
+            (len(listed) and listed.shape[1] != k):
+        raise ValueError(f"_full_pool: k={k} with a pool of {len(pool)} and {len(X)} draws of "
+                         f"{len(listed)} lists")
     out = np.empty(len(X))
     pool32 = np.ascontiguousarray(pool, np.float32)
     c232 = np.ascontiguousarray(c2, np.float32)
@@ -211,6 +217,8 @@ def _fold_tile(tile, first, exclude, top_d, top_i):  # pragma: no cover - compil
     """Fold a tile of distances (draws x candidates ``first``...) into each draw's sorted top k."""
     m, w = tile.shape
     k = top_d.shape[1]
+    if k == 0 or top_i.shape[0] < m or top_d.shape[0] < m or exclude.shape[0] < m:
+        return
     for i in range(m):
         worst = top_d[i, k - 1]
         skip = exclude[i] - first

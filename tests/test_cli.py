@@ -241,3 +241,42 @@ def test_calibrate_prints_the_table(files):
     assert result.exit_code == 0, result.output
     table = pd.read_csv(pd.io.common.StringIO(result.stdout))
     assert table["n"].tolist() == [0, 2, 5, 10, 20, 40] and (table["items"] <= 10).all()
+
+
+@pytest.mark.parametrize("flags, fragment", [
+    (["--k", "0"], "k must be a whole number >= 1, found 0"),
+    (["--k", "-1"], "k must be a whole number >= 1, found -1"),
+    (["--budget", "-5"], "budget must be a whole number >= 0"),
+    (["--per-item", "-3", "--budget", "10"], "per_item must be"),
+    (["--per-user", "0", "--budget", "100"], "per_user must be"),
+    (["--target", "nan"], "target must be a fraction in (0, 1]"),
+])
+def test_plan_refuses_bad_numbers_in_a_real_process(files, tmp_path, flags, fragment):
+    # a separate process, so that a crash of compiled code (k = 0 once made the planner's
+    # top-k fold write outside its arrays: exit 134 or 139) fails the test instead of the run
+    import subprocess
+    import sys
+
+    out = tmp_path / "p.csv"
+    done = subprocess.run([sys.executable, "-c", "from hybrid.cli import app; app()", "plan", str(files["model"]), *flags,
+                           "--out", str(out)], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 2, (done.returncode, done.stderr[-500:])
+    lines = done.stderr.strip().splitlines()
+    assert len(lines) == 1 and fragment in lines[0] and "Traceback" not in done.stderr, done.stderr
+    assert not out.exists()
+
+
+def test_plan_settings_share_one_rule(fitted):
+    # the same rule for the library, the TOML settings and the compiled kernel's guard
+    from hybrid.config import load_config
+    from hybrid.errors import InputError
+    from hybrid.posterior import _full_pool
+
+    with pytest.raises(InputError, match=r"setting 'plan.k': expected a whole number >= 1, found 0"):
+        load_config(overrides={"plan": {"k": 0}})
+    with pytest.raises(InputError, match="setting 'plan.draws': expected a whole number >= 2, found 1"):
+        load_config(overrides={"plan": {"draws": 1}})
+    with pytest.raises(ValueError, match="k=0"):
+        _full_pool(np.zeros((3, 2)), np.zeros((5, 2)), np.zeros(5), np.zeros((3, 0), int), np.zeros(3, int), 0)
+    with pytest.raises(InputError, match="k must be a whole number >= 1, found 0"):
+        hybrid.plan(fitted, k=0)

@@ -1,0 +1,64 @@
+"""The allowed range of each planner setting, in one place.
+
+The library (:func:`hybrid.planner.plan`), the TOML settings (``[plan]``,
+:func:`hybrid.config.validate`) and the command line (whose flags reach the
+library unchanged) all check a value against the same rule, so a bad number
+gets the same one-line message wherever it comes from, and never reaches a
+compiled kernel: a neighbour list of length 0 once made one write outside
+its arrays.
+
+>>> check_plan(k=10, budget=0)
+>>> check_plan(k=0)
+Traceback (most recent call last):
+...
+hybrid.errors.InputError: k must be a whole number >= 1, found 0
+"""
+from __future__ import annotations
+
+import math
+import numbers
+
+from .errors import InputError
+
+
+def _whole(low):
+    def ok(v):
+        return isinstance(v, numbers.Integral) and not isinstance(v, bool) and v >= low
+    return ok, f"a whole number >= {low}"
+
+
+def _real(test, words):
+    def ok(v):
+        return isinstance(v, numbers.Real) and not isinstance(v, bool) and math.isfinite(v) and test(v)
+    return ok, words
+
+
+def _one_of(*options):
+    return (lambda v: v in options), "one of " + ", ".join(repr(o) for o in options)
+
+
+AIMS = ("reach", "gain")
+RESPONDERS = ("active", "likely")
+
+PLAN = {
+    "target": _real(lambda v: 0 < v <= 1, "a fraction in (0, 1]"),
+    "k": _whole(1),
+    "draws": _whole(2),
+    "max_needed": _whole(1),
+    "budget": _whole(0),
+    "per_user": _whole(1),
+    "per_item": _whole(1),
+    "pool_min_ratings": _whole(0),
+    "seed": _whole(0),
+    "aim": _one_of(*AIMS),
+    "responders": _one_of(*RESPONDERS),
+    "responder_threshold": _real(lambda v: True, "a number"),
+}
+
+
+def check_plan(**values) -> None:
+    """Raise :class:`InputError` for the first value outside its rule (``None`` means unset)."""
+    for name, value in values.items():
+        ok, expected = PLAN[name]
+        if value is not None and not ok(value):
+            raise InputError(f"{name} must be {expected}, found {value!r}")
