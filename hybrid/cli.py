@@ -69,6 +69,13 @@ def train(ratings: Path = typer.Argument(..., help="Ratings table (CSV or Parque
     emit_mapping(_summary(model), format, f"trained {out}")
 
 
+def _penalty_search(path) -> str:
+    if not path:
+        return "off (all penalties given)"
+    best = min(e for _, e in path)
+    return f"{len(path)} trials, {path[0][1]:.4f} at the start, {best:.4f} chosen"
+
+
 def _summary(model) -> dict:
     m = model.metrics_
     # counts from the model as it is now (items may have been added, ratings folded in)
@@ -78,8 +85,11 @@ def _summary(model) -> dict:
             "rank fitted": model.rank_, "rank allowed": model.rank,
             "rank search (held-out RMSE by rank)":
                 ", ".join(f"{r}: {e:.4f}" for r, e in model.rank_path_) or "off",
-            "item prior spread by dimension (sd)": ", ".join(f"{v:.3f}" for v in model.dimension_spread_),
-            "map penalty": model.lam_map_,
+            # principal directions, largest first; "with signal" holds 90% of the variance
+            "prior spread by dimension (sd)": ", ".join(f"{v:.3f}" for v in model.dimension_spread_),
+            "dimensions with signal": model.dimensions_with_signal_,
+            "user penalty": model.lam_user_, "item penalty": model.lam_item_, "map penalty": model.lam_map_,
+            "penalty search (held-out RMSE)": _penalty_search(model.penalty_path_),
             "epochs run": m["epochs_run"], "objective": round(m["objective"], 3),
             "train RMSE": round(m["train_rmse"], 4),
             "validation RMSE": None if m["valid_rmse"] is None else round(m["valid_rmse"], 4),

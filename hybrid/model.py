@@ -28,12 +28,13 @@ class HybridFactorModel(Scores):
     Parameters
     ----------
     rank : int
-        Most dimensions of the user and item vectors.  With
-        ``rank_choice='held-out'`` the fit grows the model one rank at a time
-        and keeps the rank whose held-out error is lowest (``rank_``, at most
-        ``rank``; :mod:`hybrid.ranksearch`), so a rank larger than the data
-        supports is harmless; with ``'fixed'`` the vectors have ``rank``
-        dimensions.
+        Dimensions of the user and item vectors (with ``'held-out'`` rank
+        choice, the most allowed).  A rank larger than the data supports is
+        harmless at the default ``'auto'`` penalties, which grow with it: the
+        extra dimensions keep almost no prior spread (``dimension_spread_``,
+        ``dimensions_with_signal_``).  With ``rank_choice='held-out'`` the fit
+        grows the model one rank at a time and keeps the rank whose held-out
+        error is lowest (``rank_``, at most ``rank``; :mod:`hybrid.ranksearch`).
     rank_choice : {'fixed', 'held-out'}
         How the fitted rank ``rank_`` is chosen (see ``rank``).  ``'held-out'``
         is opt-in for now: on MovieLens it makes every rank from 2 to 64 give
@@ -369,10 +370,23 @@ class HybridFactorModel(Scores):
 
     @property
     def dimension_spread_(self):
-        """Standard deviation of the item prior along each vector dimension (the bias
-        left out): how much each dimension carries once the attributes are known."""
-        sd = np.sqrt(np.diag(self.prior_covariance_))
-        return sd[1:] if self.biases else sd
+        """Standard deviation of the item prior along each of its principal directions,
+        largest first (the bias left out): how much each dimension carries once the
+        attributes are known.  Principal directions, because a factor basis is only
+        fixed up to a rotation and the prior's own axes are not."""
+        Psi = self.prior_covariance_[1:, 1:] if self.biases else self.prior_covariance_
+        return np.sqrt(np.clip(np.linalg.eigvalsh(Psi), 0.0, None))[::-1]
+
+    @property
+    def dimensions_with_signal_(self):
+        """The fewest principal directions that hold 90% of the item prior's variance.
+
+        A rank larger than the data supports leaves its extra directions with almost
+        no spread, so this count stays put as the rank grows (an explained-variance
+        cut, as in principal components; common practice, the 90% is our choice).
+        """
+        var = self.dimension_spread_ ** 2
+        return int(np.searchsorted(np.cumsum(var) / max(var.sum(), 1e-300), 0.9) + 1)
 
     @property
     def new_rating_precision_(self):

@@ -18,19 +18,17 @@ supports, a larger rank changes nothing (a test checks).  Rank 0 (biases
 only) is not a candidate: the search's smallest model still has one vector
 dimension, which its penalty keeps small when it does not help.
 
-The levels are fitted with the model's own penalties (``lam_user`` on users,
-``lam_item * I`` around the projection on items, the start value of the
-learned prior), so the search adds no setting of its own.  A fixed stronger
+The levels are fitted with the given penalties, or the starting values of
+the penalty search (:data:`hybrid.penalties.START`) where they are ``"auto"``,
+and the penalties are then chosen at the rank found.  A fixed stronger
 penalty was tried and rejected: heavily shrunk extra dimensions keep helping a
 little, and on the tasting club (planted rank 5) the search then ran to rank
-24.  With the model's penalties it stops at 4 to 6 there, and at 1 to 2 on
-MovieLens latest-small (5 folds, ``tests/bench/rank_curve.py``), where every
-rank from 2 to 64 then gives the same model: warm RMSE 0.884 +- 0.006 (the
-biases-only model 0.885), cold start 0.943 +- 0.009 (mean + user bias 0.957).
-Fixed ranks 2, 4 and 8 fitted in full score 0.869, 0.857 and 0.874 on one warm
-fold where the search's rank 1 scores 0.881: the levels, fitted without the
-learned prior and the map penalty the fit then chooses, favour too small a
-rank.  That is why the search is opt-in (``rank_choice = "held-out"``).
+24.  Measured with the release before penalties were chosen on held-out
+ratings, it stopped at 1 to 2 on MovieLens latest-small where fixed ranks 2,
+4 and 8 fitted better (0.869, 0.857, 0.874 against 0.881 on one warm fold),
+so the search is opt-in (``rank_choice = "held-out"``).  With the chosen
+penalties the default fixed rank is already harmless when generous: the warm
+RMSE falls from rank 2 to rank 32 and is flat to 64 (README's rank curve).
 """
 from __future__ import annotations
 
