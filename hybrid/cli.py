@@ -19,12 +19,25 @@ from .display import (ADDRESS_HELP, ENGINE_HELP, PARTITIONS_HELP, EpochProgress,
                       emit_mapping, guarded, say)
 from .errors import InputError
 from .model import HybridFactorModel
-from .outputs import check_writable
+from .outputs import check_output, check_writable
 from .store import load_model
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, rich_markup_mode=None,
                   help="Score new, unrated catalogue items from their attributes, and plan "
                        "how many ratings each needs. Scores are estimates.")
+
+
+def _show_version(value: bool):
+    if value:
+        say(__version__)
+        raise typer.Exit()
+
+
+@app.callback()
+def _options(show_version: bool = typer.Option(False, "--version", callback=_show_version, is_eager=True,
+                                                help="Print the version and exit.")):
+    """Score new, unrated catalogue items from their attributes, and plan how many ratings
+    each needs. Scores are estimates."""
 
 
 def train_model(ratings: Path, attributes: Path, cfg: dict, quiet: bool = False) -> HybridFactorModel:
@@ -101,7 +114,7 @@ def _summary(model) -> dict:
 @guarded
 def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
           new_items: Path = typer.Argument(..., help="Attribute table of items to score."),
-          out: Path = typer.Option(..., "--out", help="Output: .csv, or .jsonl for JSON Lines."),
+          out: Path = typer.Option(..., "--out", help="Output: .csv, .json, .jsonl or .parquet."),
           config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
           liked: Optional[float] = typer.Option(None, "--liked", help="Rating that counts as liked."),
           audience: Optional[int] = typer.Option(None, "--audience", help="Users listed per item."),
@@ -118,7 +131,7 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
     from .scoring import score_items, write_scores
 
     check_format(format)
-    check_writable(out)
+    check_output(out)
     model = load_model(model_file)
     cfg = settings_for(model, config)
     where = with_engine(load_config(config), engine, address)  # where to run is not the model's

@@ -11,7 +11,7 @@ from .config import load_config, model_params
 from .data import check_items_described, read_attributes, read_ratings
 from .display import check_format, emit, say
 from .errors import InputError
-from .outputs import atomic_path, check_writable
+from .outputs import atomic_path, check_output
 
 
 def _inputs(ratings, attributes, config):
@@ -67,7 +67,7 @@ def tune_command(
     from .tune import tune
 
     check_format(format)
-    check_writable(out)
+    check_output(out, "settings")
     if trials < 1:
         raise InputError(f"--trials must be 1 or more, found {trials}")
     cfg, params, table, attrs = _inputs(ratings, attributes, config)

@@ -11,7 +11,7 @@ from .config import load_config, model_params, settings_for, with_engine
 from .data import read_attributes, read_item_list, read_ratings
 from .display import ADDRESS_HELP, ENGINE_HELP, check_format, emit, emit_mapping, say
 from .errors import InputError
-from .outputs import atomic_path, check_writable
+from .outputs import atomic_path, check_output, check_writable, write_table
 from .store import load_model
 
 CAUTION = ("Ratings are personal data, and a campaign contacts people: ask only customers who agreed "
@@ -19,21 +19,9 @@ CAUTION = ("Ratings are personal data, and a campaign contacts people: ask only 
            "Every number here is an estimate.")
 
 
-def write_table(df: pd.DataFrame, path: Path) -> None:
-    """CSV, JSON (a list of records) or JSON Lines, by the file's ending; atomically."""
-    suffix = path.suffix.lower()
-    with atomic_path(path) as tmp:
-        if suffix == ".json":
-            tmp.write_text(df.to_json(orient="records", double_precision=10), encoding="utf-8")
-        elif suffix in (".jsonl", ".ndjson"):
-            df.to_json(tmp, orient="records", lines=True, double_precision=10)
-        else:
-            df.to_csv(tmp, index=False, float_format="%.6g")
-
-
 def plan_command(
         model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
-        out: Path = typer.Option(..., "--out", help="The plan, one row per item (.csv, .json, .jsonl)."),
+        out: Path = typer.Option(..., "--out", help="The plan, one row per item (.csv, .json, .jsonl, .parquet)."),
         asks: Optional[Path] = typer.Option(None, "--asks", help="Whom to ask: item, user, rank, gain, expected rating."),
         target: Optional[float] = typer.Option(None, "--target", help="Stability an item must reach (0-1)."),
         k: Optional[int] = typer.Option(None, "--k", help="Length of the neighbour list."),
@@ -62,7 +50,7 @@ def plan_command(
     check_format(format)
     for path in (out, asks):
         if path is not None:
-            check_writable(path)
+            check_output(path)
     model = load_model(model_file)
     cfg = settings_for(model, config)
     if new_items is not None:
@@ -143,7 +131,7 @@ def calibrate_command(
 
 
 def read_plan(path: Path) -> pd.DataFrame:
-    """A plan written by `hybrid plan` (CSV, JSON or JSON Lines)."""
+    """A plan written by `hybrid plan` (CSV, JSON, JSON Lines or Parquet)."""
     if not path.is_file():
         raise InputError("plan file not found", file=str(path))
     suffix = path.suffix.lower()
@@ -152,9 +140,11 @@ def read_plan(path: Path) -> pd.DataFrame:
             df = pd.read_json(path, orient="records", dtype={"item": str})
         elif suffix in (".jsonl", ".ndjson"):
             df = pd.read_json(path, orient="records", lines=True, dtype={"item": str})
+        elif suffix == ".parquet":
+            df = pd.read_parquet(path).astype({"item": str}, errors="ignore")
         else:
             df = pd.read_csv(path, dtype={"item": str})
-    except ValueError as exc:
+    except (ValueError, OSError) as exc:
         raise InputError(f"not a readable plan ({str(exc).splitlines()[0]})", file=str(path)) from None
     missing = [c for c in ("item", "status", "ratings", "needed") if c not in df.columns]
     if missing:
@@ -175,7 +165,7 @@ def report_command(
     from .planner import plan
     from .report import build_report
 
-    check_writable(out)
+    check_output(out, "report")
     model = load_model(model_file)
     cfg = settings_for(model, config)
     p = cfg["plan"]

@@ -9,12 +9,11 @@ the user believes is in force and is not.
 from __future__ import annotations
 
 import copy
-import difflib
 import tomllib
 from pathlib import Path
 from typing import Any
 
-from .errors import InputError
+from .errors import InputError, did_you_mean
 from .limits import PLAN
 
 DEFAULTS: dict[str, dict[str, Any]] = {
@@ -84,18 +83,13 @@ COLUMN_TYPES = ("text", "category", "tags", "number", "ignore")
 _FREE_TABLES = {("attributes", "columns")}
 
 
-def _suggest(name: str, options) -> str:
-    near = difflib.get_close_matches(name, list(options), n=1, cutoff=0.5)
-    return f" (did you mean '{near[0]}'?)" if near else ""
-
-
 def _merge(base: dict, update: dict, where: tuple, source: str) -> None:
     for key, value in update.items():
         path = where + (key,)
         if key not in base:
             dotted = ".".join(path)
             raise InputError(
-                f"unknown setting '{dotted}'{_suggest(key, base)}", file=source
+                f"unknown setting '{dotted}'{did_you_mean(key, base)}", file=source
             )
         if path in _FREE_TABLES:
             if not isinstance(value, dict):
@@ -160,7 +154,7 @@ def column_schema(cfg: dict) -> dict[str, dict]:
         if kind not in COLUMN_TYPES:
             raise InputError(
                 f"column '{name}': unknown attribute type '{kind}', expected one of "
-                f"{', '.join(COLUMN_TYPES)}{_suggest(str(kind), COLUMN_TYPES)}"
+                f"{', '.join(COLUMN_TYPES)}{did_you_mean(str(kind), COLUMN_TYPES)}"
             )
         extra = set(spec) - {"type", "weight"}
         if extra:

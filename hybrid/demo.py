@@ -76,7 +76,8 @@ def _first_answers(asks, model, share=0.3, seed=0):
 
 def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):
     """Plan a sampling campaign for the whole catalogue, new lots included."""
-    from .cli_plan import CAUTION, write_table
+    from .cli_plan import CAUTION
+    from .outputs import write_table
     from .planner import plan
 
     p = plan(model, target=cfg["plan"]["target"], k=cfg["plan"]["k"], budget=budget, per_user=per_user,

@@ -26,3 +26,15 @@ class InputError(ValueError):
             parts.append(f"column '{self.column}'")
         parts.append(self.message)
         return ": ".join(parts)
+
+
+def did_you_mean(name: str, options) -> str:
+    """`` (did you mean 'x'?)`` for the closest of ``options``, or nothing.
+
+    >>> did_you_mean("regoin", ["region", "process"])
+    " (did you mean 'region'?)"
+    """
+    import difflib
+
+    near = difflib.get_close_matches(str(name), [str(o) for o in options], n=1, cutoff=0.5)
+    return f" (did you mean '{near[0]}'?)" if near else ""

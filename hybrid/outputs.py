@@ -10,7 +10,55 @@ import os
 import tempfile
 from pathlib import Path
 
+import pandas as pd
+
 from .errors import InputError
+
+# what each kind of output may be written as, by the file's ending (one place for the rule)
+ENDINGS = {
+    "table": {".csv": "csv", ".json": "json", ".jsonl": "jsonl", ".ndjson": "jsonl", ".parquet": "parquet"},
+    "report": {".html": "html", ".htm": "html"},
+    "settings": {".toml": "toml"},
+}
+
+
+def output_format(path: str | Path, kind: str = "table") -> str:
+    """The format an output's ending asks for; an unknown ending is an error before any work.
+
+    >>> output_format("plan.parquet"), output_format("scores.JSONL")
+    ('parquet', 'jsonl')
+    >>> output_format("scores.xlsx")
+    Traceback (most recent call last):
+    ...
+    hybrid.errors.InputError: scores.xlsx: unknown file ending '.xlsx'; write .csv, .json, .jsonl, .ndjson or .parquet
+    """
+    path = Path(path)
+    endings = ENDINGS[kind]
+    if path.suffix.lower() not in endings:
+        names = list(endings)
+        listed = ", ".join(names[:-1]) + " or " + names[-1] if len(names) > 1 else names[0]
+        raise InputError(f"unknown file ending '{path.suffix or '(none)'}'; write {listed}", file=str(path))
+    return endings[path.suffix.lower()]
+
+
+def check_output(path: str | Path, kind: str = "table") -> Path:
+    """:func:`check_writable` and :func:`output_format` in one: call before the work starts."""
+    output_format(path, kind)
+    return check_writable(path)
+
+
+def write_table(df: pd.DataFrame, path: str | Path) -> None:
+    """CSV, JSON (a list of records), JSON Lines or Parquet, by the file's ending; atomically."""
+    fmt = output_format(path)
+    with atomic_path(path) as tmp:
+        if fmt == "json":
+            tmp.write_text(df.to_json(orient="records", double_precision=10), encoding="utf-8")
+        elif fmt == "jsonl":
+            df.to_json(tmp, orient="records", lines=True, double_precision=10)
+        elif fmt == "parquet":
+            df.to_parquet(tmp, index=False)
+        else:
+            df.to_csv(tmp, index=False, float_format="%.6g")
 
 
 def check_writable(path: str | Path) -> Path:

@@ -16,6 +16,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 
+from .errors import InputError, did_you_mean  # noqa: E402
 from .planner import STATUS, Assessor  # noqa: E402
 
 CAUTIONS = ("Ratings are personal data, and a sampling campaign contacts people: ask only customers "
@@ -51,6 +52,27 @@ def _table(df: pd.DataFrame, cls="") -> str:
     return df.to_html(index=False, border=0, classes=cls, float_format=lambda v: f"{v:.3f}", escape=True)
 
 
+def _groups(column: pd.Series, bins: int = 5) -> pd.Series:
+    """A column to group by: as it is for categories, in quantile bins for numbers (one row per
+    distinct price would say nothing); an item without a value is counted as "(none)"."""
+    numbers = pd.to_numeric(column, errors="coerce")
+    if column.notna().any() and numbers.notna().sum() == column.notna().sum() and numbers.nunique() > bins:
+        codes, edges = pd.qcut(numbers, bins, labels=False, retbins=True, duplicates="drop")
+        labels = [f"{lo:.4g} to {hi:.4g}" for lo, hi in zip(edges[:-1], edges[1:])] + ["(none)"]
+        codes = np.where(numbers.notna(), codes, len(labels) - 1).astype(int)
+        return pd.Series(pd.Categorical.from_codes(codes, labels), index=column.index)
+    return column.astype(object).where(column.notna(), "(none)").astype(str)
+
+
+def check_by(model, by) -> None:
+    """Refuse a ``by`` column the model's attribute table does not have, naming the nearest."""
+    table = getattr(model, "item_table_", None)
+    if by is None or table is None or by in table.columns:
+        return
+    hint = did_you_mean(by, table.columns) or f"; the columns are {', '.join(map(str, table.columns))}"
+    raise InputError(f"by: no attribute column '{by}'{hint}")
+
+
 def coverage_section(model, items, by):
     counts = model.item_counts_
     fig, ax = plt.subplots(figsize=(7, 3.2))
@@ -65,8 +87,11 @@ def coverage_section(model, items, by):
     status = items["status"].value_counts().reindex(list(STATUS), fill_value=0)
     parts.append(_table(status.rename_axis("status").reset_index(name="items"), "status-counts"))
     table = getattr(model, "item_table_", None)
-    if by is not None and table is not None and by in table.columns:
-        grouped = pd.crosstab(table[by].reindex(items["item"]).to_numpy(), items["status"].to_numpy())
+    if by is not None and table is not None:
+        groups = _groups(table[by].reindex(items["item"]))
+        grouped = pd.crosstab(groups.to_numpy(), items["status"].to_numpy())
+        if isinstance(groups.dtype, pd.CategoricalDtype):   # bins in their numeric order
+            grouped = grouped.reindex([c for c in groups.cat.categories if c in grouped.index])
         grouped = grouped.reindex(columns=list(STATUS), fill_value=0)
         grouped.columns.name = None
         grouped = grouped.rename_axis(by).reset_index()
@@ -162,6 +187,7 @@ def new_items_section(model, items, liked, k=3):
 def build_report(model, items: pd.DataFrame, *, k=10, target=0.8, draws=64, seed=0, by=None, liked=4.0,
                  title="Catalogue coverage and sampling plan") -> str:
     """The whole HTML page for a model and a plan's item table (``Plan.items``)."""
+    check_by(model, by)
     table = getattr(model, "item_table_", None)
     if by is None and table is not None:
         cats = [c for c, s in model.features_._spec().items() if s["type"] == "category"]

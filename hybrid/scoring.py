@@ -11,9 +11,11 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from .errors import InputError
-from .outputs import atomic_path
+from .outputs import atomic_path, output_format
 from .related import nearest
 
 
@@ -87,20 +89,56 @@ def _flat(df: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
+def _records(df: pd.DataFrame):
+    for rec in df.to_dict(orient="records"):
+        rec["audience"] = [{"user": u, "expected_rating": r} for u, r in rec["audience"]]
+        rec["nearest"] = [{"item": i, "distance": d} for i, d in rec["nearest"]]
+        rec["content_only"] = bool(rec["content_only"])
+        yield json.dumps(rec)
+
+
+def _parquet_chunk(fh, writer, flat: pd.DataFrame):
+    """Append one chunk to a Parquet stream whose columns the first chunk fixed."""
+    if writer is None:
+        return _append(pq.ParquetWriter(fh, pa.Table.from_pandas(flat, preserve_index=False).schema), flat)
+    extra = set(flat.columns) - set(writer.schema.names)
+    if extra:  # a later chunk wider than the first: the audience/neighbour widths are settings
+        raise ValueError(f"scores chunk has columns the first chunk lacked: {sorted(extra)}")
+    return _append(writer, flat.reindex(columns=writer.schema.names))
+
+
+def _append(writer, flat):
+    writer.write_table(pa.Table.from_pandas(flat, preserve_index=False).cast(writer.schema))
+    return writer
+
+
 def write_scores(chunks, path: str | Path) -> int:
-    """Stream scored chunks to CSV or JSON Lines (by the file's ending); return rows written."""
-    path = Path(path)
-    jsonl = path.suffix.lower() in (".jsonl", ".json", ".ndjson")
-    n = 0
-    with atomic_path(path) as tmp, open(tmp, "w", encoding="utf-8", newline="") as fh:
-        for j, df in enumerate(chunks):
-            if jsonl:
-                for rec in df.to_dict(orient="records"):
-                    rec["audience"] = [{"user": u, "expected_rating": r} for u, r in rec["audience"]]
-                    rec["nearest"] = [{"item": i, "distance": d} for i, d in rec["nearest"]]
-                    rec["content_only"] = bool(rec["content_only"])
-                    fh.write(json.dumps(rec) + "\n")
+    """Stream scored chunks by the file's ending (CSV, JSON, JSON Lines, Parquet); return rows.
+
+    CSV and Parquet get the wide columns of ``_flat``; JSON and JSON Lines keep the audience
+    and the nearest items as lists.  One chunk is held at a time whatever the format.
+    """
+    fmt = output_format(path)
+    n, writer = 0, None
+    binary = fmt == "parquet"
+    with atomic_path(path) as tmp, open(tmp, "wb" if binary else "w",
+                                        **({} if binary else {"encoding": "utf-8", "newline": ""})) as fh:
+        if fmt == "json":
+            fh.write("[")
+        for df in chunks:
+            if fmt in ("json", "jsonl"):
+                for line in _records(df):
+                    fh.write(line + "\n" if fmt == "jsonl" else ("," if n else "") + "\n" + line)
+                    n += 1
+                continue
+            flat = _flat(df)
+            if fmt == "parquet":
+                writer = _parquet_chunk(fh, writer, flat)
             else:
-                _flat(df).to_csv(fh, index=False, header=(j == 0), float_format="%.6g")
+                flat.to_csv(fh, index=False, header=(n == 0), float_format="%.6g")
             n += len(df)
+        if fmt == "json":
+            fh.write("\n]\n")
+        if writer is not None:
+            writer.close()
     return n

@@ -280,3 +280,32 @@ def test_plan_settings_share_one_rule(fitted):
         _full_pool(np.zeros((3, 2)), np.zeros((5, 2)), np.zeros(5), np.zeros((3, 0), int), np.zeros(3, int), 0)
     with pytest.raises(InputError, match="k must be a whole number >= 1, found 0"):
         hybrid.plan(fitted, k=0)
+
+
+def test_version_flag_and_command():
+    for args in (["--version"], ["version"]):
+        result = run(*args)
+        assert result.exit_code == 0 and result.stdout.strip() == hybrid.__version__, result.output
+
+
+def test_the_file_ending_picks_the_format(files, tmp_path):
+    # Parquet read back by pyarrow equals the CSV, a .json file is one JSON array equal to the
+    # JSON Lines, both streamed chunk by chunk; an unknown ending fails before any work
+    outs = {e: tmp_path / f"s.{e}" for e in ("csv", "parquet", "json", "jsonl")}
+    for path in outs.values():
+        assert run("score", files["model"], files["new_lots"], "--out", path, "--chunk", "4").exit_code == 0
+    csv, parquet = pd.read_csv(outs["csv"]), pd.read_parquet(outs["parquet"])
+    assert list(parquet.columns) == list(csv.columns) and len(parquet) == 6
+    assert np.allclose(parquet["expected_rating"], csv["expected_rating"], atol=1e-5)
+    array = json.loads(outs["json"].read_text())
+    assert array == [json.loads(line) for line in outs["jsonl"].read_text().splitlines()]
+    bad = tmp_path / "s.xlsx"
+    one_line_error(run("score", files["model"], files["new_lots"], "--out", bad), "unknown file ending '.xlsx'")
+    assert not bad.exists()
+    plan = tmp_path / "plan.parquet"
+    result = run("plan", files["model"], "--out", plan, "--k", "5", "--format", "json")
+    assert result.exit_code == 0, result.output
+    assert pd.read_parquet(plan)["item"].nunique() == len(hybrid.load(files["model"]).item_ids_)
+    report = tmp_path / "r.html"
+    assert run("report", files["model"], "--plan", plan, "--out", report).exit_code == 0
+    one_line_error(run("report", files["model"], "--out", tmp_path / "r.pdf"), "write .html or .htm")

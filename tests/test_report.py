@@ -88,3 +88,22 @@ def test_report_renders_in_a_real_browser(page, tmp_path):
     import matplotlib.image as mpimg
     pixels = mpimg.imread(shot)
     assert pixels.shape[0] > 100 and pixels[..., :3].std() > 0.05   # not a blank page
+
+
+def test_status_by_a_column_typo_refused_numbers_binned():
+    from hybrid.errors import InputError
+    from hybrid.report import _groups
+
+    club = tasting_club(n_members=300, n_lots=60, n_new=0, seed=5)
+    m = HybridFactorModel(rank=3, epochs=4, schema=club.schema).fit(club.ratings, club.lots)
+    items = plan(m, k=5, draws=16).items
+    with pytest.raises(InputError, match=r"no attribute column 'regoin' \(did you mean 'region'\?\)"):
+        build_report(m, items, k=5, draws=16, by="regoin")
+    # a number is cut at its quintiles (pandas.qcut): five bins in numeric order, each holding
+    # about a fifth of the items, and every item counted once
+    bins = _groups(club.lots["price"])
+    assert list(bins.cat.categories[:5]) == sorted(bins.cat.categories[:5], key=lambda c: float(c.split()[0]))
+    counts = bins.value_counts()
+    assert counts.sum() == 60 and counts.drop("(none)").between(10, 14).all()
+    page = build_report(m, items, k=5, draws=16, by="price")
+    assert page.count("status-by") == 1 and " to " in page.split("Status by price")[1][:2000]
