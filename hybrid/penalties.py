@@ -24,8 +24,8 @@ from __future__ import annotations
 import numpy as np
 
 from .mapsolve import map_solver
-from .ranksearch import held_rmse, validation_split
-from .train import Factors, RatingData, _epochs
+from .ranksearch import held_out, held_rmse
+from .train import Factors, _epochs
 
 NAMES = ("lam_user", "lam_item", "lam_map")
 START = {"lam_user": 8.0, "lam_item": 8.0, "lam_map": 8.0}
@@ -83,10 +83,7 @@ def choose_penalties(codes, shape, A, *, rank, given, biases, seed, fraction=0.1
     >>> min(path, key=lambda p: p[1])[0] == chosen
     True
     """
-    u, i, r = (np.asarray(c) for c in codes)
-    held = validation_split(len(r), fraction, seed)
-    data = RatingData.from_codes(u[~held], i[~held], r[~held], *shape)
-    y = r[held] - data.mu
+    data, uh, ih, y = held_out(codes, shape, fraction, seed)
     values = {k: START[k] if given[k] == "auto" else float(given[k]) for k in NAMES}
     free = [k for k in NAMES if given[k] == "auto"]
     d = rank + 1 if biases else rank
@@ -99,7 +96,7 @@ def choose_penalties(codes, shape, A, *, rank, given, biases, seed, fraction=0.1
     rated = data.item_counts() > 0
     solver = map_solver(A[rated], weight[rated], values["lam_map"])
     F = _trial(data, F, A, values, weight, rated, solver, start_epochs, n_jobs)
-    best = held_rmse(F, u[held], i[held], y)
+    best = held_rmse(F, uh, ih, y)
     path = [(dict(values), best)]
     for factor in (4.0, 2.0):       # coarse steps first, then halve them
         moved = True
@@ -111,7 +108,7 @@ def choose_penalties(codes, shape, A, *, rank, given, biases, seed, fraction=0.1
                     if trial[name] == values[name] or any(p == trial for p, _ in path):
                         continue
                     G = _trial(data, F, A, trial, weight, rated, solver, epochs, n_jobs)
-                    err = held_rmse(G, u[held], i[held], y)
+                    err = held_rmse(G, uh, ih, y)
                     path.append((dict(trial), err))
                     if err < best:
                         values, best, F, moved = trial, err, G, True

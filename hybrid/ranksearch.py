@@ -57,6 +57,18 @@ def validation_split(n: int, fraction: float, seed: int) -> np.ndarray:
     return np.random.default_rng([int(seed), 7]).random(n) < fraction
 
 
+def held_out(codes, shape, fraction, seed):
+    """The training part as :class:`RatingData`, and the kept-aside codes and centred ratings.
+
+    Returns ``(data, u_held, i_held, y_held)``; shared by the rank and the penalty search so
+    both keep the same ratings aside for the same seed.
+    """
+    u, i, r = (np.asarray(c) for c in codes)
+    held = validation_split(len(r), fraction, seed)
+    data = RatingData.from_codes(u[~held], i[~held], r[~held], *shape)
+    return data, u[held], i[held], r[held] - data.mu
+
+
 def held_rmse(F, u, i, y):
     """RMSE of ratings ``y`` (less the mean) at codes ``u``, ``i``."""
     pred = np.einsum("nk,nk->n", F.user[u], F.item[i]) if not F.biases else (
@@ -112,10 +124,7 @@ def search_rank(codes, shape, A, *, most, lam_user, lam_item, lam_map, biases, s
     >>> [r for r, _ in path], rank == min(path, key=lambda p: p[1])[0]
     ([1, 2, 3], True)
     """
-    u, i, r = (np.asarray(c) for c in codes)
-    held = validation_split(len(r), fraction, seed)
-    data = RatingData.from_codes(u[~held], i[~held], r[~held], *shape)
-    y = r[held] - data.mu
+    data, uh, ih, y = held_out(codes, shape, fraction, seed)
     rng = np.random.default_rng([int(seed), 8])
     weight = np.ones(shape[1])
     rated = data.item_counts() > 0
@@ -132,7 +141,7 @@ def search_rank(codes, shape, A, *, most, lam_user, lam_item, lam_map, biases, s
             F = _widen(F, d, rng, A.shape[1])
             F.P = lam_item * np.eye(d)
         _epochs(data, F, A, lam_user, lam_map, weight, rated, solver, epochs, 0.0, n_jobs, None, None)
-        err = held_rmse(F, u[held], i[held], y)
+        err = held_rmse(F, uh, ih, y)
         path.append((rank, err))
         if best is None or err < best[1] * (1.0 - min_gain):
             best, stale = (rank, err), 0
