@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import InputError, did_you_mean
-from .limits import PLAN
+from .limits import PLAN, SCORE
 
 DEFAULTS: dict[str, dict[str, Any]] = {
     "ratings": {
@@ -186,8 +186,9 @@ def validate(cfg: dict, source: str) -> None:
         (cfg["ratings"]["duplicates"] in ("error", "last"), "ratings.duplicates", "'error' or 'last'"),
         (len(cfg["ratings"]["scale"]) == 2 and cfg["ratings"]["scale"][0] < cfg["ratings"]["scale"][1],
          "ratings.scale", "[low, high] with low < high"),
-        *[(PLAN[name][0](value), f"plan.{name}", PLAN[name][1])
-          for name, value in cfg["plan"].items() if name in PLAN],
+        *[(rules[name][0](value), f"{section}.{name}", rules[name][1])
+          for section, rules in (("plan", PLAN), ("score", SCORE))
+          for name, value in cfg[section].items() if name in rules],
         (cfg["engine"]["kind"] in ("local", "dask"), "engine.kind", "'local' or 'dask'"),
         (isinstance(cfg["engine"]["address"], str), "engine.address", "a scheduler address such as "
          "'tcp://10.0.0.5:8786', or '' to start a local cluster"),

@@ -1,4 +1,4 @@
-"""The allowed range of each planner setting, in one place.
+"""The allowed range of each planner and scoring setting, in one place.
 
 The library (:func:`hybrid.planner.plan`), the TOML settings (``[plan]``,
 :func:`hybrid.config.validate`) and the command line (whose flags reach the
@@ -56,9 +56,26 @@ PLAN = {
 }
 
 
-def check_plan(**values) -> None:
-    """Raise :class:`InputError` for the first value outside its rule (``None`` means unset)."""
+SCORE = {
+    "liked": _real(lambda v: True, "a number"),
+    "audience": _whole(0),
+    "neighbours": _whole(0),
+    "chunk": _whole(1),
+}
+
+
+def _check(rules, values) -> None:
     for name, value in values.items():
-        ok, expected = PLAN[name]
+        ok, expected = rules[name]
         if value is not None and not ok(value):
             raise InputError(f"{name} must be {expected}, found {value!r}")
+
+
+def check_plan(**values) -> None:
+    """Raise :class:`InputError` for the first value outside its rule (``None`` means unset)."""
+    _check(PLAN, values)
+
+
+def check_score(**values) -> None:
+    """The same for the scoring settings (``[score]``)."""
+    _check(SCORE, values)

@@ -14,7 +14,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .errors import InputError
+from .limits import check_score
 from .outputs import atomic_path, output_format
 from .related import nearest
 
@@ -43,8 +43,7 @@ def score_items(model, attributes: pd.DataFrame, *, liked: float = 4.0, audience
     >>> rows["content_only"].tolist(), len(rows["audience"].iloc[0])
     ([True, True, True], 2)
     """
-    if chunk < 1 or audience < 0 or neighbours < 0:
-        raise InputError(f"chunk, audience and neighbours must be positive, found {chunk}, {audience}, {neighbours}")
+    check_score(chunk=chunk, audience=audience, neighbours=neighbours, liked=liked)
     from .cluster import map_chunks
     known = pd.Index(model.item_ids_).get_indexer(attributes.index.astype(str))
     parts = ((attributes.iloc[s:s + chunk], known[s:s + chunk]) for s in range(0, len(attributes), chunk))

@@ -280,6 +280,11 @@ def test_plan_settings_share_one_rule(fitted):
         _full_pool(np.zeros((3, 2)), np.zeros((5, 2)), np.zeros(5), np.zeros((3, 0), int), np.zeros(3, int), 0)
     with pytest.raises(InputError, match="k must be a whole number >= 1, found 0"):
         hybrid.plan(fitted, k=0)
+    with pytest.raises(InputError, match="setting 'score.liked': expected a number, found nan"):
+        load_config(overrides={"score": {"liked": float("nan")}})
+    from hybrid.scoring import score_items
+    with pytest.raises(InputError, match="liked must be a number, found nan"):
+        next(score_items(fitted, fitted.item_table_.head(2), liked=float("nan")))
 
 
 def test_version_flag_and_command():
