@@ -17,7 +17,7 @@ from .config import load_config, model_params, settings_for, with_engine
 from .data import check_items_described, read_attributes, read_ratings
 from .display import (ADDRESS_HELP, ENGINE_HELP, PARTITIONS_HELP, EpochProgress, check_format, emit,
                       emit_mapping, guarded, say)
-from .errors import InputError
+from .errors import InputError, did_you_mean_id
 from .model import HybridFactorModel
 from .outputs import check_output, check_writable
 from .store import load_model
@@ -178,8 +178,8 @@ def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
         cfg = settings_for(model, None)
         attrs = read_attributes(new_items, cfg, model.features_._spec(), require_all=False)
     if item not in set(model.item_ids_) and (attrs is None or item not in set(attrs.index)):
-        raise InputError(f"item '{item}' is not in the model" + ("" if attrs is not None else
-                                                                  "; describe it with --new-items FILE"))
+        raise InputError(f"item '{item}' is not in the model{did_you_mean_id(item, model.item_ids_)}"
+                         + ("" if attrs is not None else "; describe a new item with --new-items FILE"))
     emit(model.related([item], k=k, metric=metric, attributes=attrs), format, f"items nearest to {item} ({metric})")
 
 

@@ -15,8 +15,8 @@ reduction of each item block's share of the attribute normal equations.
 :class:`ClusterRatingData` offers the same methods as
 :class:`hybrid.train.RatingData`, so the trainer is one program for both.
 
-Dask (``dask`` and ``distributed``) is an optional extra: ``pip install
-hybrid[dask]``; nothing else in the package imports it.
+Dask (``dask`` and ``distributed``) is an optional extra: from the clone, ``pip install -e
+'.[dask]'``; nothing else in the package imports it.
 """
 from __future__ import annotations
 
@@ -41,7 +41,7 @@ def _dask():
     try:
         import distributed
     except ImportError:  # the extra is not installed
-        raise InputError("engine 'dask' needs the dask extra: pip install 'hybrid[dask]'") from None
+        raise InputError("engine 'dask' needs the dask extra; from the clone: pip install -e '.[dask]'") from None
     return distributed
 
 

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from .errors import InputError, did_you_mean_id
 
 _SNIFF = (";", "\t", "|", ",")
 
@@ -282,7 +282,9 @@ def read_item_list(path: str | Path, cfg: dict, known) -> list:
     ids = id_strings(df[a["id"]], str(path), a["id"], row_base)
     unknown = np.flatnonzero(~ids.isin(known).to_numpy())
     if unknown.size:
-        raise InputError(f"item '{ids.iloc[unknown[0]]}' is not in the model (new items need --new-items)",
+        first = ids.iloc[unknown[0]]
+        raise InputError(f"item '{first}' is not in the model{did_you_mean_id(first, known)}"
+                         " (new items need --new-items)",
                          file=str(path), row=int(unknown[0]) + row_base, column=a["id"])
     return ids.tolist()
 

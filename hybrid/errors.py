@@ -38,3 +38,19 @@ def did_you_mean(name: str, options) -> str:
 
     near = difflib.get_close_matches(str(name), [str(o) for o in options], n=1, cutoff=0.5)
     return f" (did you mean '{near[0]}'?)" if near else ""
+
+
+def did_you_mean_id(value: str, known) -> str:
+    """`` (did you mean 'x'?)`` for an id that differs from a known one in case or spaces,
+    else for a close spelling (among up to 20,000 ids, so the error path stays quick).
+
+    >>> did_you_mean_id(" l0042", ["L0041", "L0042"])
+    " (did you mean 'L0042'?)"
+    """
+    value = str(value)
+    folded = "".join(value.split()).casefold()
+    for k in known:
+        if "".join(str(k).split()).casefold() == folded:
+            return f" (did you mean '{k}'?)"
+    known = list(known)
+    return did_you_mean(value, known) if len(known) <= 20_000 else ""

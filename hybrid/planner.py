@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from .campaign import (AIMS, allocate_gain, allocate_reach, asks_table, choose_askees, propensity)
-from .errors import InputError
+from .errors import InputError, did_you_mean_id
 from .limits import check_plan
 from .posterior import covariances, item_grams, stability, vector_part, vector_weight
 
@@ -343,7 +343,8 @@ def _chosen(model, items):
     names = pd.unique(np.atleast_1d(np.asarray(items, dtype=str)))
     where = pd.Index(model.item_ids_).get_indexer(names)
     if (where < 0).any():
-        raise InputError(f"item '{names[np.argmax(where < 0)]}' is not in the model "
+        first = names[np.argmax(where < 0)]
+        raise InputError(f"item '{first}' is not in the model{did_you_mean_id(first, model.item_ids_)} "
                          "(add unrated items with their attributes first)")
     return where
 

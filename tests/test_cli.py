@@ -314,3 +314,10 @@ def test_the_file_ending_picks_the_format(files, tmp_path):
     report = tmp_path / "r.html"
     assert run("report", files["model"], "--plan", plan, "--out", report).exit_code == 0
     one_line_error(run("report", files["model"], "--out", tmp_path / "r.pdf"), "write .html or .htm")
+
+
+def test_an_id_in_the_wrong_case_gets_the_right_one_suggested(files):
+    line = one_line_error(run("related", files["model"], "l0003"), "is not in the model")
+    assert "(did you mean 'L0003'?)" in line
+    line = one_line_error(run("related", files["model"], "Z9"), "is not in the model")
+    assert "did you mean" not in line and "--new-items" in line
