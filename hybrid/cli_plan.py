@@ -13,6 +13,7 @@ from .display import ADDRESS_HELP, ENGINE_HELP, check_format, emit, emit_mapping
 from .errors import InputError
 from .outputs import atomic_path, check_output, check_writable, write_table
 from .store import load_model
+from .updates import import_counts
 
 CAUTION = ("Ratings are personal data, and a campaign contacts people: ask only customers who agreed "
            "to be asked, honour opt-outs, and follow the data-protection law that applies to you. "
@@ -86,6 +87,9 @@ def update_command(
         format: str = typer.Option("table", "--format", help="table, csv or json.")):
     """Fold new ratings into a model mid-campaign, re-solving only the items and users they touch.
 
+    A file whose every rating is already in the model with the same value (imported before)
+    is refused and nothing is written.
+
     Example: hybrid update club.hybrid week1.csv --out club-week1.hybrid
     """
     check_format(format)
@@ -97,9 +101,12 @@ def update_command(
     if new_items is not None:
         attrs = read_attributes(new_items, cfg, model.features_._spec(), require_all=False)
     before = int(model.item_counts_.sum())
-    model.fold_in(table, attributes=attrs)
+    counts = import_counts(model, table)
+    model.fold_in(table, attributes=attrs)     # refuses a file whose every rating is already in
     model.save(out)
-    emit_mapping({"ratings added or replaced": len(table), "ratings now": int(model.item_counts_.sum()),
+    emit_mapping({"ratings added": counts["added"], "ratings changed": counts["changed"],
+                  "ratings already in the model (unchanged)": counts["unchanged"],
+                  "ratings now": int(model.item_counts_.sum()),
                   "ratings before": before, "items touched": int(table["item"].nunique()),
                   "users touched": int(table["user"].nunique())}, format, f"updated model written to {out}")
 

@@ -28,6 +28,12 @@ def fold_in(model, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None
     F = model._fitted()
     ratings = validate_ratings(ratings, {"user": "user", "item": "item", "rating": "rating"},
                                scale=(-np.inf, np.inf), duplicates="last", source="new ratings")
+    counts = import_counts(model, ratings)
+    if not counts["added"] and not counts["changed"]:
+        # the same answers imported twice (a re-run of last week's import, say): refuse, so
+        # that nobody believes the model learned something, and nothing is written
+        raise InputError(f"all {counts['unchanged']} ratings are already in the model with the same "
+                         "values (imported before?); nothing changed")
     _add_items(model, ratings, attributes)
     _add_users(model, ratings)
     u = np.searchsorted(model.user_ids_, ratings["user"].to_numpy(dtype=str))
@@ -48,6 +54,31 @@ def fold_in(model, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None
     model.item_counts_ = np.bincount(model.ratings_[1], minlength=len(model.item_ids_))
     model.user_counts_ = np.bincount(model.ratings_[0], minlength=len(model.user_ids_))
     return model
+
+
+def import_counts(model, ratings: pd.DataFrame) -> dict:
+    """How many of ``ratings`` (columns user, item, rating) are new to the model, change a
+    rating it holds, or repeat one it holds with the same value.
+
+    >>> from hybrid import HybridFactorModel
+    >>> from hybrid.samples import tasting_club
+    >>> club = tasting_club(n_members=200, n_lots=40, n_new=0, seed=3)
+    >>> m = HybridFactorModel(rank=2, epochs=2, lam_user=5.0, lam_item=5.0, lam_map=5.0,
+    ...                       schema=club.schema).fit(club.ratings, club.lots)
+    >>> again = club.ratings.head(3).assign(rating=[club.ratings["rating"].iloc[0], 9.0, 9.0])
+    >>> import_counts(m, again)
+    {'added': 0, 'changed': 2, 'unchanged': 1}
+    """
+    n_items = len(model.item_ids_)
+    u = pd.Index(model.user_ids_).get_indexer(ratings["user"].astype(str))
+    i = pd.Index(model.item_ids_).get_indexer(ratings["item"].astype(str))
+    old_u, old_i, old_r = model.ratings_
+    held = pd.Series(old_r, index=old_u.astype(np.int64) * n_items + old_i)
+    keys = np.where((u >= 0) & (i >= 0), u.astype(np.int64) * n_items + i, -1)
+    known = held.reindex(keys).to_numpy()
+    present = ~np.isnan(known)
+    same = present & (known == ratings["rating"].to_numpy(float))
+    return {"added": int((~present).sum()), "changed": int((present & ~same).sum()), "unchanged": int(same.sum())}
 
 
 def _add_items(model, ratings, attributes):

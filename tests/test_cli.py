@@ -233,6 +233,18 @@ def test_update_folds_in_and_plan_shows_what_is_left(files, tmp_path):
     one_line_error(run("update", files["model"], bad, "--out", tmp_path / "m3.hybrid"),
                    "item 'NEW' is not in the model")
     assert not (tmp_path / "m3.hybrid").exists()
+    # the same week imported again into the updated model: refused, nothing written; a file
+    # with one changed answer among the repeats goes in and says what it changed
+    one_line_error(run("update", model2, new, "--out", tmp_path / "m4.hybrid"),
+                   "all 3 ratings are already in the model with the same values")
+    assert not (tmp_path / "m4.hybrid").exists()
+    edited = tmp_path / "week1b.csv"
+    pd.read_csv(new).assign(score=[4.5, 4.0, 3.0]).to_csv(edited, index=False)
+    result = run("update", model2, edited, "--out", tmp_path / "m5.hybrid", "--format", "json")
+    summary = json.loads(result.stdout)
+    assert (summary["ratings added"], summary["ratings changed"],
+            summary["ratings already in the model (unchanged)"]) == (0, 1, 2)
+    assert summary["ratings now"] == summary["ratings before"]
 
 
 def test_calibrate_prints_the_table(files):
