@@ -144,13 +144,13 @@ def read_plan(path: Path) -> pd.DataFrame:
     suffix = path.suffix.lower()
     try:
         if suffix == ".json":
-            df = pd.read_json(path, orient="records", dtype={"item": str})
+            df = pd.read_json(path, orient="records", dtype={"item": str, "model_fingerprint": str})
         elif suffix in (".jsonl", ".ndjson"):
-            df = pd.read_json(path, orient="records", lines=True, dtype={"item": str})
+            df = pd.read_json(path, orient="records", lines=True, dtype={"item": str, "model_fingerprint": str})
         elif suffix == ".parquet":
             df = pd.read_parquet(path).astype({"item": str}, errors="ignore")
         else:
-            df = pd.read_csv(path, dtype={"item": str})
+            df = pd.read_csv(path, dtype={"item": str, "model_fingerprint": str})
     except (ValueError, OSError) as exc:
         raise InputError(f"not a readable plan ({str(exc).splitlines()[0]})", file=str(path)) from None
     missing = [c for c in ("item", "status", "ratings", "needed") if c not in df.columns]

@@ -351,6 +351,21 @@ class HybridFactorModel(Scores):
         return self._fitted().user
 
     @property
+    def fingerprint_(self):
+        """16 hex digits of a SHA-256 over the ids, the fitted blocks and the rating counts:
+        what a plan was made from, so a report can refuse a plan from another model (or from
+        this model before an ``update``)."""
+        import hashlib
+
+        F = self._fitted()
+        h = hashlib.sha256()
+        for part in (self.user_ids_, self.item_ids_):
+            h.update("\x1f".join(map(str, part)).encode("utf-8") + b"\x1e")
+        for array in (F.user, F.item, self.item_counts_):
+            h.update(np.ascontiguousarray(array, dtype=np.float64).tobytes())
+        return h.hexdigest()[:16]
+
+    @property
     def map_(self):
         """The attribute map ``W`` (features x block)."""
         return self._fitted().W

@@ -327,6 +327,9 @@ def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, see
         "needed_label": [f"{int(n)}" if np.isfinite(n) else f"more than {int(grid[-1])}" for n in needed],
         "planned": planned, "reaches_target": reaches, "priority": weights,
         "in_pool": np.isin(chosen, A.pool), "relative_variance": A.relative_variance[chosen]})
+    # what the plan was made with and from, on every row so that any file format keeps it
+    table = table.assign(plan_target=float(target), plan_k=int(k), plan_budget=int(budget or 0),
+                         model_fingerprint=model.fingerprint_)
     asks = _asks(model, A, chosen, planned, weights, per_user) if budget else asks_table([])
     curve_frame = pd.DataFrame(curves, index=pd.Index(model.item_ids_[chosen], name="item"),
                                columns=[int(g) for g in grid])

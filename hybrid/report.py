@@ -73,6 +73,26 @@ def check_by(model, by) -> None:
     raise InputError(f"by: no attribute column '{by}'{hint}")
 
 
+PLAN_COLUMNS = ("plan_target", "plan_k", "plan_budget", "model_fingerprint")
+
+
+def plan_made_with(model, items: pd.DataFrame) -> dict:
+    """What a plan's item table says it was made with: target, k, budget, model fingerprint.
+
+    Refuses a plan made from another model (or from this one before an ``update``), whose
+    numbers would contradict the model's; a plan without these columns (made by an older
+    release) gives ``{}``.
+    """
+    if not set(PLAN_COLUMNS) <= set(items.columns) or not len(items):
+        return {}
+    made = {name: items[name].iloc[0] for name in PLAN_COLUMNS}
+    if str(made["model_fingerprint"]) != model.fingerprint_:
+        raise InputError(f"the plan was made from another model (fingerprint {made['model_fingerprint']}, "
+                         f"this model's {model.fingerprint_}); run plan on this model")
+    return {"target": float(made["plan_target"]), "k": int(made["plan_k"]),
+            "budget": int(made["plan_budget"]), "fingerprint": str(made["model_fingerprint"])}
+
+
 def coverage_section(model, items, by):
     counts = model.item_counts_
     fig, ax = plt.subplots(figsize=(7, 3.2))
@@ -186,14 +206,24 @@ def new_items_section(model, items, liked, k=3):
 
 def build_report(model, items: pd.DataFrame, *, k=10, target=0.8, draws=64, seed=0, by=None, liked=4.0,
                  title="Catalogue coverage and sampling plan") -> str:
-    """The whole HTML page for a model and a plan's item table (``Plan.items``)."""
+    """The whole HTML page for a model and a plan's item table (``Plan.items``).
+
+    A plan's own target and k (its ``plan_*`` columns) win over ``target`` and ``k``, so the
+    page's curves are drawn against what the plan was made for.
+    """
     check_by(model, by)
+    made = plan_made_with(model, items)
+    target, k = made.get("target", target), made.get("k", k)
+    stated = (f"Plan made for a stability target of {target:g} with neighbour lists of {k}"
+              + (f", a budget of {made['budget']} ratings" if made.get("budget") else "")
+              + f"; model fingerprint {model.fingerprint_}.")
     table = getattr(model, "item_table_", None)
     if by is None and table is not None:
         cats = [c for c, s in model.features_._spec().items() if s["type"] == "category"]
         by = cats[0] if cats else None
     body = [f"<h1>{html.escape(title)}</h1>",
             f'<p class="caution" role="note"><strong>Cautions.</strong> {html.escape(CAUTIONS)}</p>',
+            f'<p class="plan-settings">{html.escape(stated)}</p>',
             coverage_section(model, items, by), needed_section(model, items, k, target, draws, seed),
             map_section(model, items), training_section(model), new_items_section(model, items, liked),
             f'<h2>Cautions</h2><p class="caution">{html.escape(CAUTIONS)}</p>']

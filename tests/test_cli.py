@@ -333,3 +333,23 @@ def test_an_id_in_the_wrong_case_gets_the_right_one_suggested(files):
     assert "(did you mean 'L0003'?)" in line
     line = one_line_error(run("related", files["model"], "Z9"), "is not in the model")
     assert "did you mean" not in line and "--new-items" in line
+
+
+def test_report_refuses_a_plan_from_another_model_and_states_the_plans_settings(files, tmp_path):
+    plan_file, html_file = tmp_path / "plan.json", tmp_path / "r.html"
+    assert run("plan", files["model"], "--target", "0.6", "--k", "5", "--budget", "30",
+               "--out", plan_file).exit_code == 0
+    assert run("report", files["model"], "--plan", plan_file, "--out", html_file).exit_code == 0
+    m = hybrid.load(files["model"])
+    page = html_file.read_text()
+    assert (f"Plan made for a stability target of 0.6 with neighbour lists of 5, a budget of 30 ratings; "
+            f"model fingerprint {m.fingerprint_}.") in page
+    # the same model after an update is another model for the plan's numbers
+    week = tmp_path / "w.csv"
+    pd.DataFrame({"member": ["M00001"], "lot": ["L0005"], "score": [1.0]}).to_csv(week, index=False)
+    other = tmp_path / "m2.hybrid"
+    assert run("update", files["model"], week, "--out", other).exit_code == 0
+    one_line_error(run("report", other, "--plan", plan_file, "--out", tmp_path / "r2.html"),
+                   "the plan was made from another model")
+    assert not (tmp_path / "r2.html").exists()
+    assert hybrid.load(other).fingerprint_ != m.fingerprint_ == hybrid.load(files["model"]).fingerprint_
