@@ -158,6 +158,7 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
         edf, sse = np.zeros(n), np.zeros(n)
         # index arrays as they come (int32 or int64: the kernel is compiled for either)
         data = (np.asarray(indptr), np.asarray(indices), np.asarray(values, float))
+        _check_kernel_inputs(*data, F_ext, y_offset, P, z, scale, s_stride, n)
         # a constant first column (the bias's intercept) is implied rather than gathered
         # (exact whenever it applies: an implied 1 equals the stored one)
         n_other = len(F_ext) - 1
@@ -172,6 +173,27 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
         else:
             _solve_kernel(*data, shares[0], *fixed)
     return z, edf, float(sse.sum())
+
+
+def _check_kernel_inputs(indptr, indices, values, F_ext, y_offset, P, z, scale, s_stride, n):
+    """Refuse sizes that would drive the compiled kernel, which indexes without bounds checks,
+    outside its arrays (a ``ValueError`` naming the mismatch, never a write out of bounds)."""
+    d = F_ext.shape[1]
+    problems = [
+        (indptr.ndim != 1 or len(indptr) != n + 1, "indptr must have one entry per row plus one"),
+        (n > 0 and (indptr[0] != 0 or indptr[-1] != len(indices) or len(values) != len(indices)),
+         "indptr must span indices and values exactly"),
+        (n > 0 and bool(np.any(np.diff(indptr) < 0)), "indptr must not decrease"),
+        (len(indices) > 0 and (indices.min() < 0 or indices.max() >= len(F_ext) - 1),
+         "an index points outside the other side's rows"),
+        (len(indices) > 0 and len(y_offset) < len(F_ext) - 1, "y_offset is shorter than the other side"),
+        (P.shape != (d, d), f"P must be {d} x {d}"),
+        (z.shape != (n, d), f"prior_mean must be {n} x {d}"),
+        (scale.shape[1] != d or (s_stride and len(scale) != n), "weight must have one row per row"),
+    ]
+    for bad, why in problems:
+        if bad:
+            raise ValueError(f"solve_rows: {why}")
 
 
 @numba.njit(nogil=True, cache=True)
