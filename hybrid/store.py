@@ -11,7 +11,10 @@ from __future__ import annotations
 import hashlib
 import io
 import json
+import re
+import struct
 import zipfile
+import zlib
 from pathlib import Path
 
 import numpy as np
@@ -76,8 +79,54 @@ def save_model(model, path) -> None:
                 zf.writestr(f"arrays/{name}.npy", buf.getvalue())
 
 
+# what a damaged archive can raise while it is read (a flipped byte can change a member's
+# compression method or flags as well as its data)
+_DAMAGED = (ValueError, zipfile.BadZipFile, OSError, EOFError, zlib.error, struct.error, NotImplementedError,
+            RuntimeError)
+
+
 def _bad(path, why):
     return InputError(f"not a usable model file: {why}", file=str(path))
+
+
+_NAME = re.compile(r"[A-Za-z0-9_]{1,200}\Z")
+# a model's arrays compress about 3x (48x at most for a column of repeated dates); a file
+# declaring more than this multiple of its own size is refused before anything is inflated
+_MOST_INFLATION = 200
+_HEADER = 4096           # room for an .npy header (numpy writes about 128 bytes)
+
+
+def _member_limit(meta) -> int:
+    """Bytes an array of the declared shape and dtype takes as ``.npy``, header included."""
+    return int(np.prod(meta["shape"], dtype=np.int64)) * np.dtype(meta["dtype"]).itemsize + _HEADER
+
+
+def _array_entries(path, zf, manifest):
+    """The manifest's arrays, each checked before any is read: a plain name (no path that
+    could climb out of the archive), a shape and a non-object dtype, a member whose declared
+    size fits that shape, and in all no more than ``_MOST_INFLATION`` times the file."""
+    entries = manifest.get("arrays")
+    if not isinstance(entries, dict):
+        raise _bad(path, "its manifest has no table of arrays")
+    total = 0
+    for name, meta in entries.items():
+        try:
+            ok = (_NAME.match(str(name)) and isinstance(meta, dict) and isinstance(meta.get("sha256"), str)
+                  and all(isinstance(n, int) and n >= 0 for n in meta["shape"])
+                  and np.dtype(meta["dtype"]).kind not in "OV")
+            size = zf.getinfo(f"arrays/{name}.npy").file_size if ok else 0
+        except KeyError:
+            raise _bad(path, f"array '{name}' is missing") from None
+        except (TypeError, ValueError):
+            ok = False
+        if not ok:
+            raise _bad(path, f"the manifest's entry for array {str(name)[:40]!r} is malformed")
+        if size > _member_limit(meta):
+            raise _bad(path, f"array '{name}' declares {size} bytes, more than its shape holds")
+        total += size
+    if total > _MOST_INFLATION * Path(path).stat().st_size + (16 << 20):
+        raise _bad(path, f"its arrays would inflate to {total} bytes, over {_MOST_INFLATION} times the file")
+    return entries.items()
 
 
 def read_manifest(path) -> tuple[dict, dict]:
@@ -87,14 +136,14 @@ def read_manifest(path) -> tuple[dict, dict]:
         raise InputError("model file not found", file=str(path))
     try:
         zf = zipfile.ZipFile(path)
-    except (zipfile.BadZipFile, OSError):
+    except _DAMAGED:
         raise _bad(path, "it is not a hybrid model (no model archive found; truncated or another kind of file)") from None
     with zf:
         try:
             manifest = json.loads(zf.read("manifest.json"))
         except KeyError:
             raise _bad(path, "it has no manifest (another kind of zip file)") from None
-        except (ValueError, zipfile.BadZipFile, OSError) as exc:
+        except _DAMAGED as exc:
             raise _bad(path, f"its manifest is damaged ({type(exc).__name__})") from None
         if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
             raise _bad(path, "its manifest is not a hybrid model manifest")
@@ -102,10 +151,12 @@ def read_manifest(path) -> tuple[dict, dict]:
             raise _bad(path, f"format version {manifest.get('format_version')!r}; this hybrid reads versions "
                              f"{', '.join(map(str, READS))}")
         arrays = {}
-        for name, meta in manifest["arrays"].items():
+        for name, meta in _array_entries(path, zf, manifest):
             try:
-                arr = np.load(io.BytesIO(zf.read(f"arrays/{name}.npy")), allow_pickle=False)
-            except (KeyError, ValueError, zipfile.BadZipFile, OSError, EOFError) as exc:
+                with zf.open(f"arrays/{name}.npy") as member:   # never more than it declared
+                    raw = member.read(_member_limit(meta) + 1)
+                arr = np.load(io.BytesIO(raw), allow_pickle=False)
+            except (KeyError, *_DAMAGED) as exc:
                 raise _bad(path, f"array '{name}' is missing or damaged ({type(exc).__name__})") from None
             if _digest(arr) != meta["sha256"]:
                 raise _bad(path, f"array '{name}' does not match its checksum (the file was altered or damaged)")
@@ -133,8 +184,22 @@ def load_model(path):
     from .train import Factors
 
     manifest, a = read_manifest(path)
+    try:
+        return _build(manifest, a, HybridFactorModel, AttributeEncoder, Factors)
+    except (KeyError, TypeError, ValueError, AttributeError, IndexError) as exc:
+        # the digests vouch for the arrays, not for a hand-edited manifest
+        detail = f"'{exc.args[0]}'" if isinstance(exc, KeyError) and exc.args else type(exc).__name__
+        raise _bad(path, f"its manifest lacks or mistypes an entry ({detail})") from None
+
+
+def _build(manifest, a, HybridFactorModel, AttributeEncoder, Factors):
+    """The model from a checked manifest and its arrays."""
+    params = manifest["params"]
+    unknown = sorted(set(params) - set(HybridFactorModel().get_params()))
+    if unknown:
+        raise KeyError(f"params.{unknown[0]}")
     # files before version 3 were fitted at exactly their rank
-    model = HybridFactorModel(**{"rank_choice": "fixed", **manifest["params"]})
+    model = HybridFactorModel(**{"rank_choice": "fixed", **params})
     model.settings_ = manifest.get("settings")
     model.features_ = AttributeEncoder.from_state(manifest["features"])
     model.user_ids_, model.item_ids_ = a["user_ids"], a["item_ids"]

@@ -220,7 +220,7 @@ def test_the_local_engine_needs_no_dask():
 def test_without_the_extra_the_dask_engine_says_what_to_install(monkeypatch, data):
     from hybrid.errors import InputError
     monkeypatch.setitem(sys.modules, "distributed", None)   # as if not installed
-    with pytest.raises(InputError, match=r"pip install 'hybrid\[dask\]'"):
+    with pytest.raises(InputError, match=r"from the clone: pip install -e '\.\[dask\]'"):
         HybridFactorModel(**FIT, schema=data.schema, engine="dask").fit(data.ratings, data.lots)
 
 
