@@ -23,8 +23,6 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .limits import AIMS  # noqa: F401  (the rule lives in limits; the planner imports it here)
-
 
 def allocate_reach(needed, weights, budget):
     """Ratings per item for the ``reach`` aim (needed <= 0 or NaN: nothing to buy)."""

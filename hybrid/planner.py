@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .campaign import (AIMS, allocate_gain, allocate_reach, asks_table, choose_askees, propensity)
+from .campaign import (allocate_gain, allocate_reach, asks_table, choose_askees, propensity)
 from .errors import InputError, did_you_mean_id
 from .limits import check_plan
 from .posterior import covariances, item_grams, stability, vector_part, vector_weight
