@@ -19,7 +19,7 @@ from hybrid.posterior import _full_pool
 EDGES = textwrap.dedent('''
     import numpy as np
     import scipy.sparse as sp
-    from hybrid.blocks import design, solve_rows
+    from hybrid.blocks import design, solve_rows, sse_rows
     from hybrid.posterior import _full_pool
     rng = np.random.default_rng(0)
     cases = 0
@@ -51,6 +51,16 @@ EDGES = textwrap.dedent('''
         got = _full_pool(X, pool, (pool ** 2).sum(1), listed, exclude, k, n_jobs=2)
         assert np.all(got > 0.99), (n_pool, k, got.min())   # its own list comes back (ties aside)
         cases += 1
+    # residual sums: an empty matrix, one rating, with and without the bias layout, against numpy
+    for n_rows, n_other, d, density, biases in ((1, 1, 1, 0.0, True), (1, 1, 2, 1.0, True),
+                                                (30, 20, 4, 0.3, False), (30, 20, 4, 0.3, True)):
+        R = sp.random(n_rows, n_other, density=density, random_state=2, format="csr")
+        a, b = rng.normal(size=(n_rows, d)), rng.normal(size=(n_other, d))
+        pred = a[:, 1:] @ b[:, 1:].T + a[:, :1] + b[:, 0][None] if biases else a @ b.T
+        rows, cols = R.nonzero()
+        want = float(((R.toarray() - pred)[rows, cols] ** 2).sum())
+        assert np.isclose(sse_rows(R.indptr, R.indices, R.data, a, b, biases), want), (n_rows, d, biases)
+        cases += 1
     print("cases", cases)
 ''')
 
@@ -59,7 +69,7 @@ def test_kernels_at_edge_sizes_with_bounds_checking(tmp_path):
     env = {**os.environ, "NUMBA_BOUNDSCHECK": "1", "NUMBA_CACHE_DIR": str(tmp_path)}
     done = subprocess.run([sys.executable, "-c", EDGES], capture_output=True, text=True, env=env, timeout=600)
     assert done.returncode == 0, done.stderr[-2000:]
-    assert done.stdout.split()[-1] == "13", done.stdout
+    assert done.stdout.split()[-1] == "17", done.stdout
 
 
 def test_solve_rows_refuses_sizes_that_would_leave_its_arrays():
