@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 
 from .blocks import design, row_grams, solve_rows
+from .limits import check_checks
 from .model import HybridFactorModel
 from .planner import Assessor, _chol
 from .posterior import overlap_of_lists, scaled, stability
@@ -58,6 +59,7 @@ def calibrate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, *, 
     Columns: ``n``, ``items``, ``predicted``, ``actual``, ``actual_se``
     (standard error of the mean actual overlap) and ``gap`` = ``|predicted - actual|``.
     """
+    check_checks(n_probe=n_probe, seed=seed, min_ratings=min_ratings)
     rng = np.random.default_rng(seed)
     counts = ratings["item"].value_counts()
     eligible = np.sort(counts.index[counts >= max(min_ratings, max(ns))].to_numpy(str))

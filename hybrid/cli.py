@@ -19,7 +19,7 @@ from .display import (ADDRESS_HELP, ENGINE_HELP, PARTITIONS_HELP, EpochProgress,
                       emit_mapping, guarded, say)
 from .errors import InputError, did_you_mean_id
 from .model import HybridFactorModel
-from .outputs import check_output, check_writable
+from .outputs import check_model_output, check_output
 from .store import load_model
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, rich_markup_mode=None,
@@ -75,7 +75,7 @@ def train(ratings: Path = typer.Argument(..., help="Ratings table (CSV or Parque
     Example: hybrid train ratings.csv lots.csv --config configs/coffee.toml --out club.hybrid
     """
     check_format(format)
-    check_writable(out)
+    check_model_output(out)
     cfg = with_engine(load_config(config), engine, address, partitions)
     model = train_model(ratings, attributes, cfg, quiet)
     model.save(out)

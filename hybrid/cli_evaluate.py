@@ -68,8 +68,6 @@ def tune_command(
 
     check_format(format)
     check_output(out, "settings")
-    if trials < 1:
-        raise InputError(f"--trials must be 1 or more, found {trials}")
     cfg, params, table, attrs = _inputs(ratings, attributes, config)
 
     def progress(row):

@@ -11,7 +11,7 @@ from .config import load_config, model_params, settings_for, with_engine
 from .data import read_attributes, read_item_list, read_ratings
 from .display import ADDRESS_HELP, ENGINE_HELP, check_format, emit, emit_mapping, say
 from .errors import InputError
-from .outputs import atomic_path, check_output, check_writable, write_table
+from .outputs import atomic_path, check_model_output, check_output, write_table
 from .store import load_model
 from .updates import import_counts
 
@@ -93,7 +93,7 @@ def update_command(
     Example: hybrid update club.hybrid week1.csv --out club-week1.hybrid
     """
     check_format(format)
-    check_writable(out)
+    check_model_output(out)
     model = load_model(model_file)
     cfg = settings_for(model, config)
     table = read_ratings(new_ratings, cfg)

@@ -27,6 +27,8 @@ def _decode(raw: bytes, source: str, delimiter: str) -> str:
         field = raw[line_start: exc.start].count(delimiter.encode()) + 1
         header = raw.split(b"\n", 1)[0].decode("utf-8", "replace").strip().split(delimiter)
         column = header[field - 1] if field <= len(header) else f"#{field}"
+        if not column.isprintable() or len(column) > 40:   # a binary file's "header" is noise
+            column = f"#{field}"
         raise InputError(
             f"expected UTF-8 text, found undecodable byte 0x{raw[exc.start]:02x}",
             file=source, row=line_no, column=column) from None

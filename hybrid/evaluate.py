@@ -20,6 +20,7 @@ import pandas as pd
 
 from .baselines import BASELINES
 from .errors import InputError
+from .limits import check_checks
 from .features import AttributeEncoder
 from .metrics import mae, ndcg_by_group, rmse
 from .model import HybridFactorModel
@@ -116,8 +117,7 @@ def evaluate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, prot
     """
     if protocol not in PROTOCOLS:
         raise InputError(f"protocol must be one of {', '.join(PROTOCOLS)}, found {protocol!r}")
-    if folds < 2:
-        raise InputError(f"folds must be 2 or more, found {folds}")
+    check_checks(folds=folds, seed=seed, min_ratings=min_ratings)
     C = _Coder(ratings, attributes, params.get("schema") or {}, params)
     records = []
     for f, test in enumerate(_split(ratings, protocol, folds, seed, min_ratings)):

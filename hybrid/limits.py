@@ -64,6 +64,43 @@ SCORE = {
 }
 
 
+# the checks of a model on held-out ratings (evaluate, calibrate, tune)
+CHECKS = {
+    "folds": (lambda v: _whole(2)[0](v) and v <= 100, "a whole number from 2 to 100"),
+    "min_ratings": _whole(1),
+    "n_probe": _whole(1),
+    "trials": _whole(1),
+    "seed": _whole(0),
+}
+
+
+def usable_cores() -> int:
+    """Cores this process may run on (its CPU affinity where the system tells it)."""
+    import os
+
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+def threads(n_jobs) -> int:
+    """The number of threads ``n_jobs`` asks for: ``-1`` (the default) is every usable core.
+
+    >>> threads(3)
+    3
+    >>> threads(-1) == usable_cores()
+    True
+    >>> threads(0)
+    Traceback (most recent call last):
+    ...
+    hybrid.errors.InputError: n_jobs must be -1 (every core) or a whole number >= 1, found 0
+    """
+    if isinstance(n_jobs, numbers.Integral) and not isinstance(n_jobs, bool) and (n_jobs >= 1 or n_jobs == -1):
+        return usable_cores() if n_jobs == -1 else int(n_jobs)
+    raise InputError(f"n_jobs must be -1 (every core) or a whole number >= 1, found {n_jobs!r}")
+
+
 def _check(rules, values) -> None:
     for name, value in values.items():
         ok, expected = rules[name]
@@ -74,6 +111,12 @@ def _check(rules, values) -> None:
 def check_plan(**values) -> None:
     """Raise :class:`InputError` for the first value outside its rule (``None`` means unset)."""
     _check(PLAN, values)
+
+
+def check_checks(**values) -> None:
+    """The same for :func:`hybrid.evaluate.evaluate`, :func:`hybrid.calibration.calibrate` and
+    :func:`hybrid.tune.tune`."""
+    _check(CHECKS, values)
 
 
 def check_score(**values) -> None:

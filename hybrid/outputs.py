@@ -22,6 +22,22 @@ ENDINGS = {
 }
 
 
+def check_model_output(path: str | Path) -> Path:
+    """A model file may have any name but one that says it is another kind of file (a
+    ``--out scores.csv`` given to ``train`` is a mistake); then :func:`check_writable`.
+
+    >>> check_model_output("club.csv")
+    Traceback (most recent call last):
+    ...
+    hybrid.errors.InputError: club.csv: a model file is not a table, a report or settings; name it e.g. club.hybrid
+    """
+    path = Path(path)
+    if any(path.suffix.lower() in endings for endings in ENDINGS.values()):
+        raise InputError("a model file is not a table, a report or settings; name it e.g. "
+                         f"{path.stem}.hybrid", file=str(path))
+    return check_writable(path)
+
+
 def output_format(path: str | Path, kind: str = "table") -> str:
     """The format an output's ending asks for; an unknown ending is an error before any work.
 
@@ -69,6 +85,15 @@ def check_writable(path: str | Path) -> Path:
         raise InputError(f"cannot write here: folder '{folder}' does not exist", file=str(path))
     if path.is_dir():
         raise InputError("cannot write here: this is a folder, expected a file name", file=str(path))
+    # the folder's permission bits do not tell (root ignores them, a file system may be
+    # read-only): create and remove a file there, as the atomic write will
+    try:
+        fd, probe = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".probe", dir=folder)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise InputError(f"cannot write in folder '{folder}': {(exc.strerror or str(exc)).lower()}",
+                         file=str(path)) from None
     return path
 
 

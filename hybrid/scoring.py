@@ -79,13 +79,15 @@ def _score_chunk(shared, part, known):
 
 def _flat(df: pd.DataFrame) -> pd.DataFrame:
     """Wide CSV columns: user_1, user_1_rating, ..., neighbour_1, neighbour_1_distance, ..."""
-    out = df.drop(columns=["audience", "nearest"]).copy()
+    columns = {}
     for name, col, value in (("user", "audience", "rating"), ("neighbour", "nearest", "distance")):
         width = max((len(v) for v in df[col]), default=0)
         for j in range(width):
-            out[f"{name}_{j + 1}"] = [v[j][0] if j < len(v) else "" for v in df[col]]
-            out[f"{name}_{j + 1}_{value}"] = [v[j][1] if j < len(v) else np.nan for v in df[col]]
-    return out
+            columns[f"{name}_{j + 1}"] = [v[j][0] if j < len(v) else "" for v in df[col]]
+            columns[f"{name}_{j + 1}_{value}"] = [v[j][1] if j < len(v) else np.nan for v in df[col]]
+    # joined at once: a column at a time re-copies the frame (thousands of columns for a long audience)
+    return pd.concat([df.drop(columns=["audience", "nearest"]).reset_index(drop=True),
+                      pd.DataFrame(columns, index=range(len(df)))], axis=1)
 
 
 def _records(df: pd.DataFrame):

@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 
 from .evaluate import cold_folds
+from .limits import check_checks
 from .metrics import rmse
 from .model import HybridFactorModel
 
@@ -29,6 +30,7 @@ def tune(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, trials: 
     ``params`` are the fixed keyword arguments of the model (schema, epochs...);
     each trial overrides rank and the three regularisation weights.
     """
+    check_checks(trials=trials, seed=seed, min_ratings=min_ratings)
     rng = np.random.default_rng(seed)
     test = cold_folds(ratings, 5, seed, min_ratings)[0]
     rest = ratings[~test]
