@@ -26,9 +26,24 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numba
 import numpy as np
-from threadpoolctl import threadpool_limits
+from threadpoolctl import ThreadpoolController
 
 _BUDGET = 1 << 21  # floats in one padded gather (row_grams, leverage_rows): bounds memory
+
+
+_CONTROLLER = []
+
+
+def blas_threads(limit):
+    """A context that holds BLAS to ``limit`` threads (``None``: leave it alone).
+
+    The thread pools are found once per process and reused: finding them anew on
+    every call (threadpoolctl's ``threadpool_limits``) cost 4 ms a call once SciPy and
+    scikit-learn were loaded, over a second in a default fit's few hundred solves.
+    """
+    if not _CONTROLLER:
+        _CONTROLLER.append(ThreadpoolController())
+    return _CONTROLLER[0].limit(limits=limit)
 
 
 def design(factors: np.ndarray, bias: np.ndarray | None) -> np.ndarray:
@@ -144,7 +159,7 @@ def solve_rows(indptr, indices, values, F_ext, y_offset, P, prior_mean=None, wei
     """
     # BLAS on one thread throughout: our threads share the rows (idle BLAS threads would
     # spin against them), and the answer does not depend on how many threads there are
-    with threadpool_limits(1):
+    with blas_threads(1):
         n = len(indptr) - 1
         d = F_ext.shape[1]
         P = np.ascontiguousarray(P, float)

@@ -133,8 +133,12 @@ def _sse(R, rows_z, other_z, biases):
     return blocks.sse_rows(*R, rows_z, other_z, biases)
 
 
-def _leverage(R, fixed, lam, members):
+def _leverage(R, fixed, lam, members, rows=None):
     F_ext, y_offset = fixed
+    if rows is not None:     # a block's own rows (local numbers) out of a sample of users
+        indptr, indices, values = R
+        part = sp.csr_matrix((values, indices, indptr), shape=(len(indptr) - 1, len(F_ext)))[rows]
+        R = (part.indptr, part.indices, part.data)
     return blocks.leverage_rows(*R, F_ext, y_offset, lam, members)
 
 
@@ -327,9 +331,13 @@ class ClusterRatingData:
                  for blk, R in zip(self.sides["user"], self._futures["user"])]
         return float(sum(self.client.gather(parts)))
 
-    def leverage(self, F_ext, y_offset, lam_user, members):
+    def leverage(self, F_ext, y_offset, lam_user, members, users=None):
+        """See :meth:`RatingData.leverage`: every user's, or those of ``users``."""
         fixed = put(self.client, (F_ext, y_offset))
-        parts = [self._submit(_leverage, R, fixed, lam_user, members) for R in self._futures["user"]]
+        parts = []
+        for blk, R in zip(self.sides["user"], self._futures["user"]):
+            rows = None if users is None else np.asarray(users)[(users >= blk.lo) & (users < blk.hi)] - blk.lo
+            parts.append(self._submit(_leverage, R, fixed, lam_user, members, rows))
         results = self.client.gather(parts)
         return float(sum(r[0] for r in results)), int(sum(r[1] for r in results))
 

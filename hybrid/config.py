@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import InputError, did_you_mean
-from .limits import PLAN, SCORE
+from .limits import PLAN, SCORE, threads
 
 DEFAULTS: dict[str, dict[str, Any]] = {
     "ratings": {
@@ -51,7 +51,7 @@ DEFAULTS: dict[str, dict[str, Any]] = {
         "weight_half": 20.0,
         "launch_offset": "learned",
         "holdout": 0.05,
-        "n_jobs": 2,
+        "n_jobs": -1,
     },
     "score": {
         "liked": 4.0,
@@ -170,6 +170,14 @@ def _penalty_ok(value) -> bool:
     return isinstance(value, (int, float)) and not isinstance(value, bool) and value > 0
 
 
+def _jobs_ok(value) -> bool:
+    try:
+        threads(value)
+    except InputError:
+        return False
+    return True
+
+
 def validate(cfg: dict, source: str) -> None:
     """Check value types and ranges that would otherwise fail deep inside."""
     m = cfg["model"]
@@ -183,6 +191,7 @@ def validate(cfg: dict, source: str) -> None:
         (m["map_weighting"] in ("none", "precision", "bias"), "model.map_weighting", "'none', 'precision' or 'bias'"),
         (m["launch_offset"] in ("learned", "none"), "model.launch_offset", "'learned' or 'none'"),
         (0 <= m["holdout"] < 1, "model.holdout", "a fraction in [0, 1)"),
+        (_jobs_ok(m["n_jobs"]), "model.n_jobs", "-1 (every core) or a whole number >= 1"),
         (cfg["ratings"]["duplicates"] in ("error", "last"), "ratings.duplicates", "'error' or 'last'"),
         (len(cfg["ratings"]["scale"]) == 2 and cfg["ratings"]["scale"][0] < cfg["ratings"]["scale"][1],
          "ratings.scale", "[low, high] with low < high"),

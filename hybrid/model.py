@@ -11,6 +11,7 @@ from .errors import InputError
 from .features import AttributeEncoder
 from .cluster import training_data
 from .launch import launch_offset
+from .limits import threads
 from .penalties import NAMES as PENALTIES, START, choose_penalties
 from .ranksearch import search_rank
 from .scores import Scores
@@ -88,7 +89,9 @@ class HybridFactorModel(Scores):
     biases : bool
         Fit user and item biases.
     n_jobs : int
-        Threads for the block solves.
+        Threads for the block solves; ``-1`` (the default) uses every core the
+        process may run on (:func:`hybrid.limits.threads`).  The fitted model
+        does not depend on it.
     text_max_features, text_min_df, text_ngrams, tag_separator
         Attribute encoding, see :class:`hybrid.features.AttributeEncoder`.
     engine : {'local', 'dask'}
@@ -117,7 +120,7 @@ class HybridFactorModel(Scores):
     def __init__(self, rank=16, rank_choice="fixed", lam_user="auto", lam_item="auto", lam_map="auto", epochs=25,
                  tol=1e-5, seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0,
                  launch_offset="learned", holdout=0.0,
-                 biases=True, n_jobs=1, text_max_features=2000, text_min_df=2, text_ngrams=1,
+                 biases=True, n_jobs=-1, text_max_features=2000, text_min_df=2, text_ngrams=1,
                  tag_separator="|", engine="local", address=None, partitions=8,
                  shared_dir=None):
         self.rank = rank
@@ -172,6 +175,7 @@ class HybridFactorModel(Scores):
             raise InputError(f"holdout must be in [0, 1), found {self.holdout!r}")
         if self.engine not in ("local", "dask"):
             raise InputError(f"engine must be 'local' or 'dask', found {self.engine!r}")
+        threads(self.n_jobs)
         if not (isinstance(self.partitions, (int, np.integer)) and self.partitions >= 1):
             raise InputError(f"partitions must be a whole number >= 1, found {self.partitions!r}")
 
@@ -215,8 +219,12 @@ class HybridFactorModel(Scores):
         r = ratings["rating"].to_numpy(float)
         train, valid = self._holdout_split(len(r))
         self.ratings_ = (u[train].astype(np.int32), i[train].astype(np.int32), r[train])
+        stages = {"prepare": time.perf_counter() - t0}
+        mark = time.perf_counter()
         self._choose_rank()
+        stages["rank search"], mark = time.perf_counter() - mark, time.perf_counter()
         self._choose_penalties()
+        stages["penalty search"], mark = time.perf_counter() - mark, time.perf_counter()
         with training_data(self) as data:
             validate = None
             if valid.size:
@@ -226,10 +234,15 @@ class HybridFactorModel(Scores):
             F, sigma2, sigma2_new = fit_factors(
                 data, self.attributes_, rank=self.rank_, lam_user=self.lam_user_, lam_item=self.lam_item_,
                 lam_map=self.lam_map_, epochs=self.epochs, tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
-                biases=self.biases, n_jobs=self.n_jobs, validate=validate, on_epoch=on_epoch)
+                biases=self.biases, n_jobs=threads(self.n_jobs), validate=validate, on_epoch=on_epoch)
             final = objective(data, F, self.attributes_, self.lam_user_, self.lam_map_, weight)
         self._set_factors(F, data.mu, sigma2, weight, sigma2_new)
+        stages["epochs"] = sum(h["seconds"] for h in F.history)
+        stages["learned prior"] = F.timings.get("learned prior", 0.0)
+        stages["other fitting"] = time.perf_counter() - mark - stages["epochs"] - stages["learned prior"]
+        mark = time.perf_counter()
         self._set_launch(weight)
+        stages["launch offset"] = time.perf_counter() - mark
         last = dict(F.history[-1])
         # the final state (after the learned prior and the last item step) is what is reported
         last["objective"], sse = final
@@ -246,7 +259,7 @@ class HybridFactorModel(Scores):
                          "lam_item": self.lam_item_, "lam_map": self.lam_map_,
                          "penalty_path": [[p, e] for p, e in self.penalty_path_],
                          "variance_scales": list(F.scales), "launch_offset": self.launch_offset_,
-                         "seconds": time.perf_counter() - t0}
+                         "seconds": time.perf_counter() - t0, "stage_seconds": stages}
         return self
 
     def _choose_penalties(self):
@@ -259,7 +272,7 @@ class HybridFactorModel(Scores):
             shape = (len(self.user_ids_), len(self.item_ids_))
             chosen, self.penalty_path_ = choose_penalties(
                 self.ratings_, shape, self.attributes_, rank=self.rank_, given=given, biases=self.biases,
-                seed=self.seed, n_jobs=self.n_jobs)
+                seed=self.seed, n_jobs=threads(self.n_jobs))
         for name in PENALTIES:
             setattr(self, name + "_", float(chosen[name]))
 
@@ -275,7 +288,7 @@ class HybridFactorModel(Scores):
                for name in PENALTIES}
         self.rank_, self.rank_path_ = search_rank(
             self.ratings_, shape, self.attributes_, most=int(self.rank), **lam, biases=self.biases,
-            seed=self.seed, n_jobs=self.n_jobs)
+            seed=self.seed, n_jobs=threads(self.n_jobs))
 
     def _holdout_split(self, n):
         idx = np.arange(n)

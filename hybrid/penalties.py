@@ -15,6 +15,14 @@ held-out data is common practice (cross-validated regularisation, as in the
 ridge and lasso paths of Hastie, Tibshirani and Friedman, *The Elements of
 Statistical Learning*, 2009, ch. 3 and 7).
 
+On a large catalogue the search runs on a seeded set of whole users holding
+about ``most`` ratings (100,000 by default; every rating when there are fewer).
+A penalty is the noise variance over the prior's, ``sigma^2 / tau^2`` in the
+Bayesian reading of ridge regression (common practice): a property of how
+ratings and tastes vary, not of how many ratings there are, so a sample of
+users estimates it, at a fraction of the cost.  Whole users keep each
+user's own count, the side where counts are smallest.
+
 The kept-aside ratings of an item whose every rating was kept aside are
 predicted from the map alone, so the map penalty is chosen for cold items
 too.  A number given for a penalty fixes it and the search leaves it alone.
@@ -40,8 +48,31 @@ def _trial(data, F, A, values, weight, rated, solver, epochs, n_jobs):
     return G
 
 
+SEARCH_RATINGS = 100_000
+
+
+def user_sample(users, most, seed):
+    """A mask of the ratings of a seeded set of whole users, about ``most`` ratings in all
+    (all of them when there are no more than ``most``).
+
+    >>> users = np.repeat(np.arange(10), 100)        # ten users, 100 ratings each
+    >>> keep = user_sample(users, 300, seed=0)
+    >>> int(keep.sum()), len(np.unique(users[keep]))
+    (300, 3)
+    """
+    users = np.asarray(users)
+    if len(users) <= most:
+        return np.ones(len(users), bool)
+    counts = np.bincount(users)
+    order = np.random.default_rng([int(seed), 13]).permutation(len(counts))
+    chosen = order[:int(np.searchsorted(np.cumsum(counts[order]), most)) + 1]
+    mask = np.zeros(len(counts), bool)
+    mask[chosen] = True
+    return mask[users]
+
+
 def choose_penalties(codes, shape, A, *, rank, given, biases, seed, fraction=0.1, epochs=4,
-                     start_epochs=10, n_jobs=1):
+                     start_epochs=10, n_jobs=1, most=SEARCH_RATINGS):
     """The penalties with the lowest held-out RMSE, and the search's path.
 
     Parameters
@@ -56,6 +87,8 @@ def choose_penalties(codes, shape, A, *, rank, given, biases, seed, fraction=0.1
         ``{name: value or "auto"}`` for each of :data:`NAMES`; numbers stay fixed.
     epochs, start_epochs : int
         Epochs of each trial, and of the first fit at the starting values.
+    most : int
+        About how many ratings the search uses (:func:`user_sample`).
 
     Returns
     -------
@@ -83,6 +116,8 @@ def choose_penalties(codes, shape, A, *, rank, given, biases, seed, fraction=0.1
     >>> min(path, key=lambda p: p[1])[0] == chosen
     True
     """
+    keep = user_sample(codes[0], most, seed)
+    codes = tuple(np.asarray(c)[keep] for c in codes)
     data, uh, ih, y = held_out(codes, shape, fraction, seed)
     values = {k: START[k] if given[k] == "auto" else float(given[k]) for k in NAMES}
     free = [k for k in NAMES if given[k] == "auto"]

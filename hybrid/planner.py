@@ -17,7 +17,7 @@ import pandas as pd
 
 from .campaign import (allocate_gain, allocate_reach, asks_table, choose_askees, propensity)
 from .errors import InputError, did_you_mean_id
-from .limits import check_plan
+from .limits import check_plan, threads
 from .posterior import covariances, item_grams, stability, vector_part, vector_weight
 
 GRID = np.array([0, 1, 2, 3, 5, 8, 12, 20, 30, 50, 80, 120, 200, 300, 500])
@@ -134,7 +134,7 @@ class Assessor:
             cov = covariances(self.model, self.grams[blk], self.weight[blk], more)
             mean[s:s + len(blk)], se[s:s + len(blk)] = stability(
                 self.vectors[blk], _chol(self.model, cov), self.vectors[self.pool], self.k, self.eps[draws],
-                exclude=self.pool_pos[blk], n_jobs=self.model.n_jobs)
+                exclude=self.pool_pos[blk], n_jobs=threads(self.model.n_jobs))
         return mean, se
 
 

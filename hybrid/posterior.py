@@ -22,9 +22,8 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numba
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from .blocks import design, row_grams
+from .blocks import blas_threads, design, row_grams
 
 # a tile of draw x candidate distances (256 x 2048 floats, 2 MB) stays in a core's cache
 _DRAWS_PER_TILE = 256
@@ -203,7 +202,7 @@ def _full_pool(X, pool, c2, listed, exclude, k, n_jobs=1):
     edges = np.linspace(0, len(X), max(1, min(int(n_jobs), len(X) // _DRAWS_PER_TILE + 1)) + 1).astype(int)
     shares = [slice(a, b) for a, b in zip(edges[:-1], edges[1:])]
     # BLAS on one thread: our threads share the draws (idle BLAS threads would spin against them)
-    with threadpool_limits(1):
+    with blas_threads(1):
         if len(shares) > 1:
             with ThreadPoolExecutor(len(shares)) as workers:
                 list(workers.map(run, shares))

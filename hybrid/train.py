@@ -22,9 +22,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
-from threadpoolctl import threadpool_limits
 
-from .blocks import design, leverage_rows, solve_rows, sse_rows
+from .blocks import blas_threads, design, leverage_rows, solve_rows, sse_rows
 from .mapsolve import block_diagonal, column_parts, map_solver
 from .prior import learn_prior, predictive_sigma2, well_rated
 
@@ -82,9 +81,10 @@ class RatingData:
         R = self.by_user
         return sse_rows(R.indptr, R.indices, R.data, F.user, F.item, F.biases)
 
-    def leverage(self, F_ext, y_offset, lam_user, members):
-        """Leverage terms of the user fits (:func:`hybrid.blocks.leverage_rows`)."""
-        R = self.by_user
+    def leverage(self, F_ext, y_offset, lam_user, members, users=None):
+        """Leverage terms of the user fits (:func:`hybrid.blocks.leverage_rows`), of
+        every user or of the ``users`` given."""
+        R = self.by_user if users is None else self.by_user[users]
         return leverage_rows(R.indptr, R.indices, R.data, F_ext, y_offset, lam_user, members)
 
     def without(self, held) -> "RatingData":
@@ -116,6 +116,7 @@ class Factors:
     scales: tuple = (1.0, 1.0)
     sse: float | None = None
     spread: np.ndarray | None = None   # the learned prior covariance (None: sigma^2 P^-1)
+    timings: dict = field(default_factory=dict)   # seconds of the finishing stages
 
     def split(self, z):
         """(bias, vectors) of a block; bias is ``None`` without biases."""
@@ -246,7 +247,7 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
     rated = data.item_counts() > 0
     solver = map_solver(A[rated], weight[rated], lam_map)
     # with our own threads, BLAS runs on one: its idle threads would spin against ours
-    with threadpool_limits(1 if n_jobs > 1 else None):
+    with blas_threads(1 if n_jobs > 1 else None):
         _epochs(data, F, A, lam_user, lam_map, weight, rated, solver, epochs, tol, n_jobs, validate, on_epoch)
     return _finish(data, F, A, lam_user, lam_map, weight, rated, solver, prior, seed, n_jobs)
 
@@ -289,8 +290,9 @@ def _finish(data, F, A, lam_user, lam_map, weight, rated, solver, prior, seed, n
     sse = objective(data, F, A, lam_user, lam_map, weight)[1]
     fit_sigma2 = sse / max(data.nnz - edf_u.sum() - edf_i.sum(), 1.0)
     counts = data.item_counts()
-    sigma2_new = predictive_sigma2(data, F, lam_user, fit_sigma2, well_rated(counts))
+    sigma2_new = predictive_sigma2(data, F, lam_user, fit_sigma2, well_rated(counts), seed=seed)
     if prior == "learned":
+        t0 = time.perf_counter()
         Psi, sigma2_new, F.scales = learn_prior(data, F, A, weight, sigma2_new, lam_user, lam_map, seed,
                                                 n_jobs)
         F.spread = Psi    # what the planner's uncertainty reads
@@ -305,9 +307,10 @@ def _finish(data, F, A, lam_user, lam_map, weight, rated, solver, prior, seed, n
             W_old = F.W
             item_step(data, F, A, weight, n_jobs)
             map_step(F, A, rated, solver, data)
-            if np.abs(F.W - W_old).max() <= 1e-6 * max(np.abs(W_old).max(), 1.0):
+            if np.abs(F.W - W_old).max() <= 1e-4 * max(np.abs(W_old).max(), 1.0):
                 break
         item_step(data, F, A, weight, n_jobs)
+        F.timings["learned prior"] = time.perf_counter() - t0
     # the last item step leaves every rated item's vector at its exact posterior mean under
     # the final users, map and penalty: the planner samples around these very vectors
     F.lam_map = lam_map

@@ -4,8 +4,11 @@ Items with 60 or more ratings are probed: trained without any of their
 ratings, solved with all of them (the full-data list) and with only n, and the
 planner's prediction at n compared with the actual overlap.
 """
+import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from hybrid.calibration import calibrate
 from hybrid.samples import tasting_club
@@ -45,3 +48,14 @@ def test_calibration_on_movielens_latest_small():
     assert table["items"].iloc[0] == 120
     assert (table["gap"] <= 0.05).all(), table
     assert table["actual"].iloc[-1] > table["actual"].iloc[0] + 0.2
+
+
+@given(st.floats(0.3, 5.0), st.floats(0.1, 3.0), st.floats(0.0, 0.2))
+@settings(max_examples=300, deadline=None)
+def test_grid_descent_finds_the_grid_minimum_of_a_valley(centre, slope, floor):
+    # each n's gap |predicted - actual| has one valley over the scale (predicted
+    # stability falls as a scale grows); the walk must land where the full grid does
+    from hybrid.recalibrate import GRID, grid_descent
+
+    gap = lambda c: floor + slope * abs(np.log(c) - np.log(centre))
+    assert grid_descent(gap) == min(GRID, key=gap)
