@@ -36,6 +36,9 @@ def guarded(fn):
             fail(str(exc))
         except (FileNotFoundError, PermissionError, IsADirectoryError) as exc:
             fail(f"{exc.filename}: {exc.strerror.lower()}")
+        except OSError as exc:   # a full disk, a quota, a device gone: the output was not replaced
+            where = f"{exc.filename}: " if exc.filename else ""
+            fail(f"{where}{(exc.strerror or str(exc)).lower()}; nothing was written")
         except KeyboardInterrupt:
             fail("interrupted; nothing was written", 130)
     return wrapper
