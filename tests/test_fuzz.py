@@ -74,7 +74,7 @@ WORDS = st.one_of(st.integers(-10 ** 30, 10 ** 30).map(str), st.floats(allow_nan
 
 
 @given(data=st.data())
-@settings(max_examples=1500, deadline=None, suppress_health_check=list(HealthCheck))
+@settings(max_examples=2500, deadline=None, suppress_health_check=list(HealthCheck))
 def test_drawn_values_for_every_option(files, tmp_path_factory, data):
     out = tmp_path_factory.getbasetemp() / "drawn-out"
     out.mkdir(exist_ok=True)

@@ -12,7 +12,8 @@ item) it times, in one process and one run:
 - ``hybrid train`` on the same data written to CSV, with only the columns and the rank
   in its config (the command's own defaults otherwise), as a child process.
 
-It prints each time, and the ratios default / plain (target <= 2.0) and train / plain.
+It prints each time, the process's peak memory, and the ratios default / plain (target
+<= 2.0) and train / plain.
 The first run after installing compiles the row solver (cached afterwards), so a
 small warm-up fit runs first.
 
@@ -22,6 +23,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import resource
 import subprocess
 import sys
 import tempfile
@@ -88,7 +90,8 @@ def main(argv=None):
     out = {"ratings": len(ratings), "rank": args.rank, "epochs": epochs, "penalties": chosen,
            "default_seconds": round(t_default, 2), "plain_seconds": round(t_plain, 2),
            "ratio_default_to_plain": round(t_default / t_plain, 2),
-           "default_stages": {k: round(v, 2) for k, v in default.metrics_["stage_seconds"].items()}}
+           "default_stages": {k: round(v, 2) for k, v in default.metrics_.get("stage_seconds", {}).items()}}
+    out["peak_mb"] = round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)   # of both fits
     if not args.no_command:
         t_train = train_command(ratings, items, args.rank)
         out.update(train_seconds=round(t_train, 2), ratio_train_to_plain=round(t_train / t_plain, 2))
