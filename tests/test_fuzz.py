@@ -109,6 +109,8 @@ def test_compiled_code_survives_in_a_real_process(files, tmp_path, args):
     assert "Traceback" not in done.stderr
 
 
-def test_zz_tally(files):
-    # runs last in this module: the figures for the closing note
-    print(f"\nfuzz: {TALLY['tried']} cases tried, {TALLY['passed']} passed")
+def test_the_suite_tried_thousands_of_cases():
+    # runs last in this module (tests/conftest.py prints the counts at the end of the run)
+    if not TALLY["tried"]:
+        pytest.skip("counts the cases of the tests above; run the module whole")
+    assert TALLY["tried"] >= 2000 and TALLY["passed"] == TALLY["tried"], TALLY
