@@ -335,8 +335,9 @@ class ClusterRatingData:
         """See :meth:`RatingData.leverage`: every user's, or those of ``users``."""
         fixed = put(self.client, (F_ext, y_offset))
         parts = []
+        users = None if users is None else np.asarray(users)
         for blk, R in zip(self.sides["user"], self._futures["user"]):
-            rows = None if users is None else np.asarray(users)[(users >= blk.lo) & (users < blk.hi)] - blk.lo
+            rows = None if users is None else users[(users >= blk.lo) & (users < blk.hi)] - blk.lo
             parts.append(self._submit(_leverage, R, fixed, lam_user, members, rows))
         results = self.client.gather(parts)
         return float(sum(r[0] for r in results)), int(sum(r[1] for r in results))

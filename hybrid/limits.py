@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import math
 import numbers
+import os
 
 from .errors import InputError
 
@@ -76,8 +77,6 @@ CHECKS = {
 
 def usable_cores() -> int:
     """Cores this process may run on (its CPU affinity where the system tells it)."""
-    import os
-
     try:
         return max(1, len(os.sched_getaffinity(0)))
     except (AttributeError, OSError):

@@ -17,11 +17,14 @@ Statistical Learning*, 2009, ch. 3 and 7).
 
 On a large catalogue the search runs on a seeded set of whole users holding
 about ``most`` ratings (100,000 by default; every rating when there are fewer).
-A penalty is the noise variance over the prior's, ``sigma^2 / tau^2`` in the
-Bayesian reading of ridge regression (common practice): a property of how
-ratings and tastes vary, not of how many ratings there are, so a sample of
-users estimates it, at a fraction of the cost.  Whole users keep each
-user's own count, the side where counts are smallest.
+In the Bayesian reading of ridge regression (common practice) a penalty is
+the noise variance over the prior's, ``sigma^2 / tau^2``: a property of how
+ratings and tastes vary rather than of how many ratings there are, so a
+sample of users can estimate it at a fraction of the cost.  Whole users keep
+each user's own count; items do see fewer ratings in the sample, so the
+reading is checked, not assumed: on MovieLens a search on half or a quarter
+of the users matched the full search's held-out RMSE (README, "Speed and
+memory").
 
 The kept-aside ratings of an item whose every rating was kept aside are
 predicted from the map alone, so the map penalty is chosen for cold items

@@ -71,7 +71,7 @@ def grid_descent(gap, grid=GRID, start=1.0):
 
     Predicted stability falls as a scale grows, so each ``n``'s gap
     ``|predicted - actual|`` has one valley over the grid; the walk finds it with
-    three to five evaluations where the full grid takes nine.  Ties keep the value
+    three to six evaluations where the full grid takes nine.  Ties keep the value
     nearer ``start``.
 
     >>> calls = []
