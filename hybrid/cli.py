@@ -107,7 +107,10 @@ def _summary(model) -> dict:
             "train RMSE": round(m["train_rmse"], 4),
             "validation RMSE": None if m["valid_rmse"] is None else round(m["valid_rmse"], 4),
             "residual variance": round(m["sigma2"], 4),
-            "launch offset (new items' bias)": round(model.launch_offset_, 4), "seconds": round(m["seconds"], 2)}
+            "launch offset (new items' bias)": round(model.launch_offset_, 4), "seconds": round(m["seconds"], 2),
+            # models saved before the stages were timed have none
+            "seconds by stage": ", ".join(f"{k} {v:.2f}" for k, v in m.get("stage_seconds", {}).items()
+                                          if v >= 0.005) or "not recorded"}
 
 
 @app.command()

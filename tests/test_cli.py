@@ -81,6 +81,10 @@ def test_related_and_inspect(files):
     assert "L0003" not in table["neighbour"].tolist()
     info = json.loads(run("inspect", files["model"], "--format", "json").stdout)
     assert info["setting rank"] == 5 and "notes (text)" in info["attribute columns"]
+    # where the fit's time went: the stages named, their seconds adding up to no more than the whole
+    stages = dict(part.rsplit(" ", 1) for part in info["seconds by stage"].split(", "))
+    assert {"penalty search", "epochs", "learned prior"} <= set(stages)
+    assert sum(map(float, stages.values())) <= info["seconds"] + 0.05
 
 
 def test_help_has_an_example():

@@ -18,7 +18,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from typer.testing import CliRunner
 
-from fuzz_cases import NUMBERS, build, cases, commands, _with
+from fuzz_cases import _with, build, cases, commands
 from hybrid.cli import app
 
 TALLY = {"tried": 0, "passed": 0}
@@ -38,8 +38,9 @@ def check(args, expect, out):
     done = CliRunner().invoke(app, args)
     text = (done.stdout or "") + (done.stderr or "")
     left = _leftovers(out)
-    for p in out.iterdir():
-        p.unlink() if p.is_file() else None
+    for p in out.iterdir():         # a clean folder for the next case
+        if p.is_file():
+            p.unlink()
     if "Traceback" in text or (done.exception and not isinstance(done.exception, SystemExit)):
         return f"crashed: {done.exception!r}"
     if expect == "valid":
