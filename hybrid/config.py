@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import InputError, did_you_mean
-from .limits import PLAN, SCORE, threads
+from .limits import JOBS, PLAN, SCORE, threads
 
 DEFAULTS: dict[str, dict[str, Any]] = {
     "ratings": {
@@ -191,7 +191,7 @@ def validate(cfg: dict, source: str) -> None:
         (m["map_weighting"] in ("none", "precision", "bias"), "model.map_weighting", "'none', 'precision' or 'bias'"),
         (m["launch_offset"] in ("learned", "none"), "model.launch_offset", "'learned' or 'none'"),
         (0 <= m["holdout"] < 1, "model.holdout", "a fraction in [0, 1)"),
-        (_jobs_ok(m["n_jobs"]), "model.n_jobs", "-1 (every core) or a whole number >= 1"),
+        (_jobs_ok(m["n_jobs"]), "model.n_jobs", JOBS),
         (cfg["ratings"]["duplicates"] in ("error", "last"), "ratings.duplicates", "'error' or 'last'"),
         (len(cfg["ratings"]["scale"]) == 2 and cfg["ratings"]["scale"][0] < cfg["ratings"]["scale"][1],
          "ratings.scale", "[low, high] with low < high"),

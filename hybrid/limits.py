@@ -83,6 +83,9 @@ def usable_cores() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+JOBS = "-1 (every core) or a whole number >= 1"
+
+
 def threads(n_jobs) -> int:
     """The number of threads ``n_jobs`` asks for: ``-1`` (the default) is every usable core.
 
@@ -97,7 +100,7 @@ def threads(n_jobs) -> int:
     """
     if isinstance(n_jobs, numbers.Integral) and not isinstance(n_jobs, bool) and (n_jobs >= 1 or n_jobs == -1):
         return usable_cores() if n_jobs == -1 else int(n_jobs)
-    raise InputError(f"n_jobs must be -1 (every core) or a whole number >= 1, found {n_jobs!r}")
+    raise InputError(f"n_jobs must be {JOBS}, found {n_jobs!r}")
 
 
 def _check(rules, values) -> None:
