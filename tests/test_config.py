@@ -4,8 +4,8 @@ from pathlib import Path
 
 import pytest
 
-from hybrid.config import DEFAULTS, load_config, model_params
-from hybrid.errors import InputError
+from hybrid.app.config import DEFAULTS, load_config, model_params
+from hybrid.common.errors import InputError
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -34,12 +34,12 @@ def test_bad_values_are_named(tmp_path):
 
 
 def test_demo_settings_are_the_shipped_coffee_config():
-    from hybrid.samples import DEMO_CONFIG
+    from hybrid.datasets.club import DEMO_CONFIG
     assert DEMO_CONFIG.read_text() == (ROOT / "configs/coffee.toml").read_text()
 
 
 def test_catalog_samples_are_the_seeded_generator_output(tmp_path):
-    from hybrid.samples import write_samples
+    from hybrid.datasets.club import write_samples
     write_samples(tmp_path)
     for name in ("ratings.csv", "lots.csv", "new_lots.csv"):
         assert (tmp_path / name).read_bytes() == (ROOT / "catalog_samples" / name).read_bytes(), name

@@ -2,9 +2,9 @@
 import pandas as pd
 import pytest
 
-from hybrid.config import load_config
-from hybrid.data import read_attributes, read_ratings, validate_ratings
-from hybrid.errors import InputError
+from hybrid.app.config import load_config
+from hybrid.common.errors import InputError
+from hybrid.io.tables import read_attributes, read_ratings, validate_ratings
 
 CFG = load_config(overrides={"ratings": {"user": "member", "item": "lot", "rating": "score"},
                              "attributes": {"id": "lot", "columns": {"notes": "text", "price": "number"}}})

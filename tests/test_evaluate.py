@@ -4,8 +4,8 @@ import pandas as pd
 import pytest
 from sklearn.metrics import mean_absolute_error, mean_squared_error, ndcg_score
 
-from hybrid.evaluate import cold_folds, evaluate, warm_folds
-from hybrid.metrics import mae, ndcg_by_group, rmse
+from hybrid.evaluation.evaluate import cold_folds, evaluate, warm_folds
+from hybrid.evaluation.metrics import mae, ndcg_by_group, rmse
 
 
 def test_rmse_and_mae_match_sklearn():
@@ -42,8 +42,8 @@ def test_folds_partition_the_ratings(club):
 
 def test_evaluate_table_on_the_tasting_club():
     # invented data (internal check): the demo's own settings
-    from hybrid.config import load_config, model_params
-    from hybrid.samples import DEMO_CONFIG, tasting_club
+    from hybrid.app.config import load_config, model_params
+    from hybrid.datasets.club import DEMO_CONFIG, tasting_club
 
     club = tasting_club()
     params = {**model_params(load_config(DEMO_CONFIG)), "schema": club.schema}
@@ -66,7 +66,7 @@ def test_biases_baseline_is_the_ridge_least_squares_solution():
     import scipy.sparse as sp
     from scipy.sparse.linalg import lsqr
 
-    from hybrid.baselines import Biases
+    from hybrid.evaluation.baselines import Biases
 
     rng = np.random.default_rng(4)
     u, i = rng.integers(0, 30, 400), rng.integers(0, 20, 400)

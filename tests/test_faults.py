@@ -1,6 +1,6 @@
 """Faults lose nothing: a killed command, two writers of one file, a full disk.
 
-Every output goes through ``hybrid.outputs.atomic_path`` (a temporary file beside the
+Every output goes through ``hybrid.io.outputs.atomic_path`` (a temporary file beside the
 target, renamed at the end; a rename within a folder is atomic on POSIX file systems,
 common practice), so the target is always either the previous file or a whole new one.
 These tests check that promise from outside, the way a user meets it: a child process
@@ -20,11 +20,11 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from fuzz_cases import build
 from typer.testing import CliRunner
 
-from fuzz_cases import build
 from hybrid.cli import app
-from hybrid.store import load_model
+from hybrid.estimator.model import HybridFactorModel
 
 
 @pytest.fixture(scope="module")
@@ -39,7 +39,7 @@ def _digest(path):
 def _whole(path, kind):
     """True when ``path`` is a complete output of its kind (it reads back in full)."""
     if kind == "model":
-        load_model(path)
+        HybridFactorModel.load(path)
     elif kind == "table":
         pd.read_csv(path)
     else:

@@ -3,12 +3,13 @@ import json
 
 import numpy as np
 import pandas as pd
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from sklearn.feature_extraction.text import TfidfVectorizer
 from sklearn.impute import SimpleImputer
 from sklearn.preprocessing import StandardScaler
 
-from hybrid.features import AttributeEncoder
+from hybrid.estimator.features import AttributeEncoder
 
 TABLE = pd.DataFrame({
     "notes": ["cherry cocoa cocoa", "jasmine lime", "cocoa fudge", "", "lime cherry jasmine"],

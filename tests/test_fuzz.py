@@ -14,11 +14,11 @@ import subprocess
 import sys
 
 import pytest
+from fuzz_cases import _with, build, cases, commands
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from typer.testing import CliRunner
 
-from fuzz_cases import _with, build, cases, commands
 from hybrid.cli import app
 
 TALLY = {"tried": 0, "passed": 0}

@@ -13,14 +13,14 @@ import textwrap
 import numpy as np
 import pytest
 
-from hybrid.blocks import design, solve_rows
-from hybrid.posterior import _full_pool
+from hybrid.core.blocks import design, solve_rows
+from hybrid.core.posterior import _full_pool
 
 EDGES = textwrap.dedent('''
     import numpy as np
     import scipy.sparse as sp
-    from hybrid.blocks import design, solve_rows, sse_rows
-    from hybrid.posterior import _full_pool
+    from hybrid.core.blocks import design, solve_rows, sse_rows
+    from hybrid.core.posterior import _full_pool
     rng = np.random.default_rng(0)
     cases = 0
     # row solver: an empty row, a row with one rating, every row rated, d = 1 and d = 5, 1 or 2 threads

@@ -1,12 +1,12 @@
-"""The launch offset (hybrid.launch): left-out projections and what they miss."""
+"""The launch offset (hybrid.core.launch): left-out projections and what they miss."""
 import numpy as np
 import pandas as pd
 import pytest
 import scipy.sparse as sp
 
 from hybrid import HybridFactorModel
-from hybrid.launch import loo_projections
-from hybrid.mapsolve import block_diagonal
+from hybrid.core.launch import loo_projections
+from hybrid.core.mapsolve import block_diagonal
 
 
 def _refit_map(A, Z, w, lam, P):

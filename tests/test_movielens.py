@@ -11,8 +11,8 @@ from pathlib import Path
 
 import pytest
 
-from hybrid.config import load_config, model_params
-from hybrid.evaluate import evaluate
+from hybrid.app.config import load_config, model_params
+from hybrid.evaluation.evaluate import evaluate
 
 pytestmark = pytest.mark.slow
 ROOT = Path(__file__).resolve().parents[1]
@@ -24,7 +24,7 @@ RANKS = (8, 32, 64)
 
 @pytest.fixture(scope="module")
 def movielens():
-    from hybrid.opendata import movielens_small
+    from hybrid.datasets.opendata import movielens_small
 
     ratings, attributes, schema = movielens_small()
     assert len(ratings) == 100_004 and ratings["user"].nunique() == 671 and len(attributes) == 9_066

@@ -3,7 +3,7 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from hybrid.cluster import _bounds
+from hybrid.engines.cluster import _bounds
 
 
 @given(st.lists(st.integers(0, 50), min_size=1, max_size=60), st.integers(1, 12))

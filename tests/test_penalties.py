@@ -2,11 +2,11 @@
 import numpy as np
 import pytest
 
-from hybrid.evaluate import evaluate
-from hybrid.features import AttributeEncoder
-from hybrid.model import HybridFactorModel
-from hybrid.penalties import HIGHEST, LOWEST, NAMES, START, choose_penalties
-from hybrid.samples import tasting_club
+from hybrid.core.penalties import HIGHEST, LOWEST, NAMES, START, choose_penalties
+from hybrid.datasets.club import tasting_club
+from hybrid.estimator.features import AttributeEncoder
+from hybrid.estimator.model import HybridFactorModel
+from hybrid.evaluation.evaluate import evaluate
 
 
 @pytest.fixture(scope="module")

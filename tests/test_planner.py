@@ -6,10 +6,15 @@ import scipy.stats
 from sklearn.linear_model import Ridge
 
 from hybrid import HybridFactorModel
-from hybrid.campaign import allocate_gain, allocate_reach, choose_askees, exact_allocation
-from hybrid.errors import InputError
-from hybrid.planner import FIRST_DRAWS, Assessor, plan, settle
-from hybrid.posterior import covariances, item_grams, stability
+from hybrid.common.errors import InputError
+from hybrid.core.posterior import covariances, item_grams, stability
+from hybrid.planning.campaign import (
+    allocate_gain,
+    allocate_reach,
+    choose_askees,
+    exact_allocation,
+)
+from hybrid.planning.planner import FIRST_DRAWS, Assessor, plan, settle
 
 
 @pytest.fixture(scope="module")
@@ -19,7 +24,7 @@ def fixed_model(club):
 
 
 def _rows(model, item):
-    R = model._data().by_item
+    R = model.rating_data().by_item
     users = R.indices[R.indptr[item]:R.indptr[item + 1]]
     y = R.data[R.indptr[item]:R.indptr[item + 1]] - model.user_blocks_[users, 0]
     B = np.hstack([np.ones((len(users), 1)), model.user_blocks_[users, 1:]])
@@ -137,7 +142,7 @@ def test_plan_end_to_end(club):
     asked = p.asks.groupby("item").size()
     assert len(p.asks) == items["planned"].sum() or len(p.asks) < items["planned"].sum()
     assert p.asks.groupby("user").size().max() <= 2
-    R = m._data().by_item
+    R = m.rating_data().by_item
     pos = pd.Index(m.item_ids_)
     for item, users in p.asks.groupby("item")["user"]:
         i = pos.get_loc(item)

@@ -3,8 +3,8 @@ import numpy as np
 import pytest
 
 from hybrid import HybridFactorModel
-from hybrid.ranksearch import ladder, search_rank, validation_split
-from hybrid.samples import tasting_club
+from hybrid.core.ranksearch import ladder, search_rank, validation_split
+from hybrid.datasets.club import tasting_club
 
 
 @pytest.fixture(scope="module")
@@ -44,7 +44,7 @@ def test_fixed_rank_skips_the_search(club):
 
 
 def test_search_rank_returns_the_best_level_it_tried(club):
-    from hybrid.features import AttributeEncoder
+    from hybrid.estimator.features import AttributeEncoder
 
     A = AttributeEncoder(club.schema).fit(club.lots).transform(club.lots)
     codes = (np.unique(club.ratings["user"], return_inverse=True)[1],
@@ -58,7 +58,7 @@ def test_search_rank_returns_the_best_level_it_tried(club):
 
 @pytest.mark.parametrize("bad", [{"rank_choice": "auto"}, {"rank_choice": 3}])
 def test_bad_rank_settings_name_the_setting(club, bad):
-    from hybrid.errors import InputError
+    from hybrid.common.errors import InputError
 
     with pytest.raises(InputError, match=next(iter(bad))):
         HybridFactorModel(**bad).fit(club.ratings, club.lots)

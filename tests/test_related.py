@@ -4,8 +4,8 @@ import pandas as pd
 import pytest
 from sklearn.neighbors import NearestNeighbors
 
-from hybrid.related import nearest
-from hybrid.scoring import score_items
+from hybrid.core.neighbours import nearest
+from hybrid.estimator.batch import score_items
 
 
 @pytest.mark.parametrize("metric", ["euclidean", "cosine"])
@@ -29,7 +29,7 @@ def test_among_restricts_candidates(fitted):
 
 
 def test_blocked_computation_matches_direct(monkeypatch):
-    import hybrid.related as rel
+    import hybrid.core.neighbours as rel
     rng = np.random.default_rng(0)
     Q, C = rng.normal(size=(50, 4)), rng.normal(size=(300, 4))
     full = nearest(Q, C, 5)

@@ -7,9 +7,9 @@ from html.parser import HTMLParser
 import pytest
 
 from hybrid import HybridFactorModel
-from hybrid.planner import plan
-from hybrid.report import build_report
-from hybrid.samples import tasting_club
+from hybrid.app.report import build_report
+from hybrid.datasets.club import tasting_club
+from hybrid.planning.planner import plan
 
 
 class Collect(HTMLParser):
@@ -91,8 +91,8 @@ def test_report_renders_in_a_real_browser(page, tmp_path):
 
 
 def test_status_by_a_column_typo_refused_numbers_binned():
-    from hybrid.errors import InputError
-    from hybrid.report import _groups
+    from hybrid.app.report import _groups
+    from hybrid.common.errors import InputError
 
     club = tasting_club(n_members=300, n_lots=60, n_new=0, seed=5)
     m = HybridFactorModel(rank=3, epochs=4, schema=club.schema).fit(club.ratings, club.lots)

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 import hybrid
-from hybrid.errors import InputError
-from hybrid.store import read_manifest
+from hybrid.common.errors import InputError
+from hybrid.io.store import read_manifest
 
 
 @pytest.fixture()

@@ -7,10 +7,10 @@ import scipy.sparse as sp
 from sklearn.linear_model import Ridge
 
 from hybrid import HybridFactorModel
-from hybrid.samples import tasting_club
-from hybrid.prior import em_covariance
-from hybrid.mapsolve import MapSolver, map_solver
-from hybrid.train import Factors, item_step, map_step, objective, user_step
+from hybrid.core.mapsolve import MapSolver, map_solver
+from hybrid.core.prior import em_covariance
+from hybrid.core.steps import Factors, item_step, map_step, objective, user_step
+from hybrid.datasets.club import tasting_club
 
 
 def dense_ratings(n_users=30, n_items=20, rank=3, noise=0.05, seed=0):
@@ -38,7 +38,7 @@ def test_eckart_young_truncated_svd():
 def test_every_half_step_never_increases_the_objective(club):
     model = HybridFactorModel(rank=4, epochs=1, schema=club.schema, text_min_df=1, prior="fixed").fit(
         club.ratings, club.lots)
-    data = model._data()
+    data = model.rating_data()
     F, A = model.factors_, model.attributes_
     weight = np.ones(len(model.item_ids_))
     rated = model.item_counts_ > 0
@@ -88,7 +88,7 @@ def test_bias_weighting_keeps_every_half_step_descending(club):
     # the bias coordinate's prior weighted per item, the vectors' not: still one objective
     model = HybridFactorModel(rank=4, epochs=1, schema=club.schema, text_min_df=1, prior="fixed",
                               map_weighting="bias", weight_half=3.0).fit(club.ratings, club.lots)
-    data, F, A = model._data(), model.factors_, model.attributes_
+    data, F, A = model.rating_data(), model.factors_, model.attributes_
     weight = model.prior_weight_
     assert weight.shape == (len(model.item_ids_), 5) and (weight[:, 1:] == 1).all()
     assert np.allclose(weight[:, 0], 1 + model.item_counts_ / 3.0)
@@ -122,12 +122,12 @@ def test_bias_weighted_learned_prior_couples_no_bias_with_a_vector(club, tmp_pat
     assert np.abs(m.prior_precision_[0, 1:]).max() == 0 and np.abs(m.prior_covariance_[0, 1:]).max() == 0
     assert np.all(np.linalg.eigvalsh(m.prior_covariance_) > 0)
     # the model file keeps the per-coordinate weights, and folding ratings in updates them
-    from hybrid.store import load_model, save_model
-    from hybrid.updates import fold_in
+    from hybrid.estimator.persist import save_model
+    from hybrid.estimator.updates import fold_in
 
     path = tmp_path / "bias.hybrid"
     save_model(m, path)
-    back = load_model(path)
+    back = HybridFactorModel.load(path)
     assert np.array_equal(back.prior_weight_, m.prior_weight_)
     lot = m.item_ids_[int(np.argmin(m.item_counts_))]
     new = pd.DataFrame({"user": m.user_ids_[:3], "item": [lot] * 3, "rating": [5.0, 4.5, 5.0]})
@@ -163,7 +163,7 @@ def test_weighted_em_recovers_the_scaled_spread():
 def test_user_step_equals_sklearn_ridge(fitted):
     # reference: sklearn.linear_model.Ridge(alpha=lam_user, fit_intercept=False) on [1, x_i]
     m = fitted
-    data = m._data()
+    data = m.rating_data()
     F = Factors(m.user_blocks_.copy(), m.item_blocks_, m.map_, m.prior_precision_)
     user_step(data, F, m.lam_user_)
     row = data.by_user[7]
@@ -256,14 +256,14 @@ def test_fold_in_resolves_only_touched_rows(club):
 
 
 def test_bad_hyper_parameters_named(club):
-    from hybrid.errors import InputError
+    from hybrid.common.errors import InputError
     with pytest.raises(InputError, match="lam_user must be a number > 0 or .auto., found -1"):
         HybridFactorModel(lam_user=-1).fit(club.ratings, club.lots)
 
 
 def test_rating_data_without_keeps_ratings_equal_to_the_mean():
     # a rating equal to the mean is stored as an explicit zero; dropping items must not lose it
-    from hybrid.train import RatingData
+    from hybrid.core.steps import RatingData
     data = RatingData.from_codes([0, 0, 1, 1], [0, 1, 0, 2], [2.0, 3.0, 3.0, 4.0], 2, 3)
     assert data.mu == 3.0 and data.nnz == 4
     out = data.without([2])

@@ -42,7 +42,8 @@ def sizes(n_ratings):
 def child(engine, n_ratings, epochs):
     from bench_train import synthetic
 
-    from hybrid.train import RatingData, fit_factors
+    from hybrid.core.steps import RatingData
+    from hybrid.core.train import fit_factors
 
     n_users, n_items = sizes(n_ratings)
     u, i, r, A = synthetic(n_users, n_items, n_ratings)
@@ -54,7 +55,7 @@ def child(engine, n_ratings, epochs):
     else:
         import distributed
 
-        from hybrid.cluster import ClusterRatingData
+        from hybrid.engines.cluster import ClusterRatingData
         with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0",
                                       host="127.0.0.1") as cluster, distributed.Client(cluster) as client:
             client.run(reset_peak)

@@ -17,7 +17,8 @@ import numpy as np
 import pandas as pd
 
 from hybrid import HybridFactorModel
-from hybrid.planner import Assessor, _chol, plan
+from hybrid.core.posterior import draw_factor, vector_part
+from hybrid.planning.planner import Assessor, plan
 
 
 def catalogue(seed=0, trusted=20_000, covered=5_000, users=30_000, rank=32):
@@ -79,7 +80,7 @@ def main():
     ours = A.at(sample, 0.0)[0]
     ours_s = (time.perf_counter() - t0) / len(sample)
     t0 = time.perf_counter()
-    ref = brute_force(A.vectors[sample], _chol(model, A.cov_now[sample]), A.vectors[A.pool], A.eps,
+    ref = brute_force(A.vectors[sample], draw_factor(vector_part(model, A.cov_now[sample])), A.vectors[A.pool], A.eps,
                       exclude=A.pool_pos[sample])
     ref_s = (time.perf_counter() - t0) / len(sample)
     print(f"stability now, per item: {ours_s * 1e3:.2f} ms; dense numpy reference {ref_s * 1e3:.2f} ms; "

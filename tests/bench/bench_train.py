@@ -44,7 +44,8 @@ def synthetic(n_users, n_items, n_ratings, rank=32, seed=0):
 def one_size(n_users, n_items, n_ratings, epochs=4):
     from sklearn.decomposition import TruncatedSVD
 
-    from hybrid.train import RatingData, fit_factors
+    from hybrid.core.steps import RatingData
+    from hybrid.core.train import fit_factors
 
     u, i, r, A = synthetic(n_users, n_items, n_ratings)
     data = RatingData.from_codes(u, i, r, n_users, n_items)

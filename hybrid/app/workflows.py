@@ -1,0 +1,44 @@
+"""The steps the command line and the demo share, so that both run exactly the same thing."""
+from __future__ import annotations
+
+from pathlib import Path
+
+from hybrid.app.config import model_params
+from hybrid.engines.cluster import engine_client
+from hybrid.estimator.model import HybridFactorModel
+from hybrid.io.tables import check_items_described, read_attributes, read_ratings
+
+# shown by every screen that plans or reports a campaign
+CAUTION = ("Ratings are personal data, and a campaign contacts people: ask only customers who agreed "
+           "to be asked, honour opt-outs, and follow the data-protection law that applies to you. "
+           "Every number here is an estimate.")
+
+
+def train_model(ratings: Path, attributes: Path, cfg: dict, on_epoch=None) -> HybridFactorModel:
+    """Read both tables, fit, and keep the settings in the model (``hybrid train`` and the demo)."""
+    params = model_params(cfg)
+    table = read_ratings(ratings, cfg)
+    attrs = read_attributes(attributes, cfg, params["schema"])
+    check_items_described(table, attrs, source=str(ratings), row_base=2)
+    with engine_client(cfg) as client:
+        if client is not None:  # a cluster started here serves the fit by its address
+            params["address"] = client.scheduler.address
+        model = HybridFactorModel(**params)
+        model.fit(table, attrs, on_epoch=on_epoch)
+    model.address = cfg["engine"]["address"] or None  # not a cluster that is gone
+    model.set_fitted(settings_=cfg)
+    return model
+
+
+def plan_arguments(cfg: dict, **flags) -> dict:
+    """The keyword arguments of :func:`hybrid.plan` from settings, with any flag that was given
+    (not ``None``) in place of its setting: ``hybrid plan``, ``hybrid report`` and the demo all
+    plan through this, so they plan alike."""
+    p = cfg["plan"]
+    args = {"target": p["target"], "k": p["k"], "seed": p["seed"], "draws": p["draws"],
+            "max_needed": p["max_needed"], "aim": p["aim"], "responders": p["responders"],
+            # 'likely' responders are those expected to give the liked score or more
+            "responder_threshold": p["responder_threshold"] or cfg["score"]["liked"],
+            "pool_min_ratings": p["pool_min_ratings"]}
+    args.update({name: value for name, value in flags.items() if value is not None})
+    return args

@@ -1,0 +1,239 @@
+"""The command line: a thin typer face over the library.
+
+Every command prints tables on a terminal (``--format csv|json`` for
+machines), writes files atomically, and answers bad input with one line on
+stderr and exit code 2.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import pandas as pd
+import typer
+
+from hybrid import __version__
+from hybrid.app.config import load_config, model_params, settings_for, with_engine
+from hybrid.app.workflows import train_model
+from hybrid.cli.display import (
+    ADDRESS_HELP,
+    ENGINE_HELP,
+    PARTITIONS_HELP,
+    EpochProgress,
+    check_format,
+    emit,
+    emit_mapping,
+    guarded,
+    say,
+)
+from hybrid.common.errors import InputError, did_you_mean_id
+from hybrid.estimator.model import HybridFactorModel
+from hybrid.io.outputs import check_model_output, check_output
+from hybrid.io.tables import read_attributes
+
+app = typer.Typer(add_completion=False, no_args_is_help=True, rich_markup_mode=None,
+                  help="Score new, unrated catalogue items from their attributes, and plan "
+                       "how many ratings each needs. Scores are estimates.")
+
+
+def _show_version(value: bool):
+    if value:
+        say(__version__)
+        raise typer.Exit()
+
+
+@app.callback()
+def _options(show_version: bool = typer.Option(False, "--version", callback=_show_version, is_eager=True,
+                                                help="Print the version and exit.")):
+    """Score new, unrated catalogue items from their attributes, and plan how many ratings
+    each needs. Scores are estimates."""
+
+
+@app.command()
+@guarded
+def train(ratings: Path = typer.Argument(..., help="Ratings table (CSV or Parquet)."),
+          attributes: Path = typer.Argument(..., help="Item attribute table, one row per item."),
+          config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
+          out: Path = typer.Option(..., "--out", help="Model file to write."),
+          quiet: bool = typer.Option(False, "--quiet", help="No progress bar."),
+          engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
+          address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
+          partitions: Optional[int] = typer.Option(None, "--partitions", help=PARTITIONS_HELP),
+          format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """Fit the joint model and write a model file.
+
+    Example: hybrid train ratings.csv lots.csv --config configs/coffee.toml --out club.hybrid
+    """
+    check_format(format)
+    check_model_output(out)
+    cfg = with_engine(load_config(config), engine, address, partitions)
+    with EpochProgress(model_params(cfg)["epochs"], quiet) as progress:
+        model = train_model(ratings, attributes, cfg, on_epoch=progress)
+    model.save(out)
+    emit_mapping(_summary(model), format, f"trained {out}")
+
+
+def _penalty_search(path) -> str:
+    if not path:
+        return "off (all penalties given)"
+    best = min(e for _, e in path)
+    return f"{len(path)} trials, {path[0][1]:.4f} at the start, {best:.4f} chosen"
+
+
+def _summary(model) -> dict:
+    m = model.metrics_
+    # counts from the model as it is now (items may have been added, ratings folded in)
+    return {"users": len(model.user_ids_), "items": len(model.item_ids_),
+            "rated items": int((model.item_counts_ > 0).sum()), "ratings": int(model.item_counts_.sum()),
+            "held out": m["n_holdout"], "features": m["n_features"],
+            "rank fitted": model.rank_, "rank allowed": model.rank,
+            "rank search (held-out RMSE by rank)":
+                ", ".join(f"{r}: {e:.4f}" for r, e in model.rank_path_) or "off",
+            # principal directions, largest first; "with signal" holds 90% of the variance
+            "prior spread by dimension (sd)": ", ".join(f"{v:.3f}" for v in model.dimension_spread_),
+            "dimensions with signal": model.dimensions_with_signal_,
+            "user penalty": model.lam_user_, "item penalty": model.lam_item_, "map penalty": model.lam_map_,
+            "penalty search (held-out RMSE)": _penalty_search(model.penalty_path_),
+            "epochs run": m["epochs_run"], "objective": round(m["objective"], 3),
+            "train RMSE": round(m["train_rmse"], 4),
+            "validation RMSE": None if m["valid_rmse"] is None else round(m["valid_rmse"], 4),
+            "residual variance": round(m["sigma2"], 4),
+            "launch offset (new items' bias)": round(model.launch_offset_, 4), "seconds": round(m["seconds"], 2),
+            # models saved before the stages were timed have none
+            "seconds by stage": ", ".join(f"{k} {v:.2f}" for k, v in m.get("stage_seconds", {}).items()
+                                          if v >= 0.005) or "not recorded"}
+
+
+@app.command()
+@guarded
+def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+          new_items: Path = typer.Argument(..., help="Attribute table of items to score."),
+          out: Path = typer.Option(..., "--out", help="Output: .csv, .json, .jsonl or .parquet."),
+          config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
+          liked: Optional[float] = typer.Option(None, "--liked", help="Rating that counts as liked."),
+          audience: Optional[int] = typer.Option(None, "--audience", help="Users listed per item."),
+          neighbours: Optional[int] = typer.Option(None, "--neighbours", help="Nearest items listed."),
+          chunk: Optional[int] = typer.Option(None, "--chunk", help="Items scored at a time."),
+          engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
+          address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
+          format: str = typer.Option("table", "--format", help="table, csv or json (the summary).")):
+    """Score items no one has rated: expected rating, liked share, audience, nearest items.
+
+    Example: hybrid score club.hybrid new_lots.csv --out scored.csv
+    """
+    from hybrid.engines.cluster import engine_client
+    from hybrid.estimator.batch import score_items, write_scores
+
+    check_format(format)
+    check_output(out)
+    model = HybridFactorModel.load(model_file)
+    cfg = settings_for(model, config)
+    where = with_engine(load_config(config), engine, address)  # where to run is not the model's
+    attrs = read_attributes(new_items, cfg, model.features_.spec(), require_all=False)
+    s = cfg["score"]
+    head = []
+
+    def keep_head(gen):
+        for df in gen:
+            if len(head) < 1:
+                head.append(df)
+            yield df
+
+    with engine_client(where) as client:
+        chunks = score_items(model, attrs, liked=s["liked"] if liked is None else liked,
+                             audience=s["audience"] if audience is None else audience,
+                             neighbours=s["neighbours"] if neighbours is None else neighbours,
+                             chunk=s["chunk"] if chunk is None else chunk, client=client)
+        n = write_scores(keep_head(chunks), out)
+    top = head[0].nlargest(10, "expected_rating") if head else pd.DataFrame()
+    if len(top):
+        top = top.assign(nearest=[v[0][0] if v else "" for v in top["nearest"]])[
+            ["item", "content_only", "expected_rating", "liked_share", "nearest"]]
+        emit(top, format, f"{n} items scored into {out}; the best of the first chunk")
+
+
+@app.command()
+@guarded
+def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+            item: str = typer.Argument(..., help="Item id."),
+            k: int = typer.Option(5, "--k", help="How many neighbours."),
+            metric: str = typer.Option("euclidean", "--metric", help="euclidean or cosine."),
+            new_items: Optional[Path] = typer.Option(None, "--new-items",
+                                                     help="Attribute table describing ITEM if the model lacks it."),
+            format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """Nearest items by distance between item vectors (rated and projected alike).
+
+    Example: hybrid related club.hybrid L0007 --k 5 --metric cosine
+    """
+    check_format(format)
+    model = HybridFactorModel.load(model_file)
+    attrs = None
+    if new_items is not None:
+        cfg = settings_for(model, None)
+        attrs = read_attributes(new_items, cfg, model.features_.spec(), require_all=False)
+    if item not in set(model.item_ids_) and (attrs is None or item not in set(attrs.index)):
+        raise InputError(f"item '{item}' is not in the model{did_you_mean_id(item, model.item_ids_)}"
+                         + ("" if attrs is not None else "; describe a new item with --new-items FILE"))
+    emit(model.related([item], k=k, metric=metric, attributes=attrs), format, f"items nearest to {item} ({metric})")
+
+
+@app.command()
+@guarded
+def inspect(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+            format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """What a model was trained on, its settings and its metrics.
+
+    Example: hybrid inspect club.hybrid
+    """
+    check_format(format)
+    model = HybridFactorModel.load(model_file)
+    info = _summary(model)
+    params = model.get_params()
+    info.update({f"setting {k}": v for k, v in params.items() if k != "schema"})
+    info["attribute columns"] = ", ".join(f"{c} ({s['type']})" for c, s in model.features_.spec().items())
+    info["last epochs' validation RMSE"] = ", ".join(
+        f"{r['valid_rmse']:.4f}" for r in model.history_[-3:] if r["valid_rmse"] == r["valid_rmse"])
+    emit_mapping(info, format, f"model {model_file}")
+
+
+@app.command()
+@guarded
+def demo(folder: Path = typer.Argument(Path("demo-out"), help="Folder for the demo's files."),
+         seed: int = typer.Option(7, "--seed", help="Seed of the invented tasting club.")):
+    """Run the tasting-club demo end to end and tell what it found.
+
+    Writes invented sample files, trains, scores the new lots, plans a sampling
+    campaign and writes a report, all inside FOLDER.
+
+    Example: hybrid demo demo-out
+    """
+    from hybrid.app.demo import run_demo
+    run_demo(folder, seed=seed, say=say)
+
+
+from hybrid.cli.plan import (  # noqa: E402
+    calibrate_command,
+    plan_command,
+    report_command,
+    update_command,
+)
+
+app.command("plan")(guarded(plan_command))
+app.command("update")(guarded(update_command))
+app.command("calibrate")(guarded(calibrate_command))
+app.command("report")(guarded(report_command))
+
+from hybrid.cli.evaluate import evaluate_command, tune_command  # noqa: E402
+
+app.command("evaluate")(guarded(evaluate_command))
+app.command("tune")(guarded(tune_command))
+
+
+@app.command()
+def version():
+    """Print the version."""
+    say(__version__)
+
+
+def main():  # the console script
+    app()

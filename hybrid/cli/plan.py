@@ -1,0 +1,188 @@
+"""Commands for the campaign analyst: plan, update, calibrate (registered in :mod:`hybrid.cli`)."""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import pandas as pd
+import typer
+
+from hybrid.app.config import load_config, model_params, settings_for, with_engine
+from hybrid.app.workflows import CAUTION, plan_arguments
+from hybrid.cli.display import (
+    ADDRESS_HELP,
+    ENGINE_HELP,
+    check_format,
+    emit,
+    emit_mapping,
+    say,
+)
+from hybrid.common.errors import InputError
+from hybrid.estimator.model import HybridFactorModel
+from hybrid.estimator.updates import import_counts
+from hybrid.io.outputs import atomic_path, check_model_output, check_output, write_table
+from hybrid.io.tables import read_attributes, read_item_list, read_ratings
+
+
+def plan_command(
+        model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+        out: Path = typer.Option(..., "--out", help="The plan, one row per item (.csv, .json, .jsonl, .parquet)."),
+        asks: Optional[Path] = typer.Option(None, "--asks", help="Whom to ask: item, user, rank, gain, expected rating."),
+        target: Optional[float] = typer.Option(None, "--target", help="Stability an item must reach (0-1)."),
+        k: Optional[int] = typer.Option(None, "--k", help="Length of the neighbour list."),
+        budget: Optional[int] = typer.Option(None, "--budget", help="Ratings to collect in all."),
+        per_user: Optional[int] = typer.Option(None, "--per-user", help="Most asks per user."),
+        per_item: Optional[int] = typer.Option(None, "--per-item", help="Most ratings planned per item."),
+        priority: Optional[str] = typer.Option(None, "--priority", help="Attribute column of item priority."),
+        aim: Optional[str] = typer.Option(None, "--aim", help="reach (items to target) or gain (total stability)."),
+        new_items: Optional[Path] = typer.Option(None, "--new-items", help="Attribute table of unrated items to include."),
+        only: Optional[Path] = typer.Option(None, "--items", help="Plan only the items in this table's item column."),
+        config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
+        engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
+        address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
+        format: str = typer.Option("table", "--format", help="table, csv or json (the summary).")):
+    """Plan a sampling campaign: which items are under-covered, how many ratings each needs, whom to ask.
+
+    Ratings are personal data, and a campaign contacts people: ask only customers who agreed
+    to be asked, honour opt-outs, and follow the data-protection law that applies to you.
+    Every number here is an estimate.
+
+    Example: hybrid plan club.hybrid --budget 500 --per-user 3 --out plan.csv --asks asks.csv
+    """
+    from hybrid.engines.cluster import engine_client
+    from hybrid.planning.planner import plan
+
+    check_format(format)
+    for path in (out, asks):
+        if path is not None:
+            check_output(path)
+    model = HybridFactorModel.load(model_file)
+    cfg = settings_for(model, config)
+    if new_items is not None:
+        model.add_items(read_attributes(new_items, cfg, model.features_.spec(), require_all=False))
+    chosen = None if only is None else read_item_list(only, cfg, model.item_ids_)
+    with engine_client(with_engine(load_config(config), engine, address)) as client:
+        result = plan(model, **plan_arguments(cfg, target=target, k=k, aim=aim), budget=budget,
+                      per_user=per_user, priority=priority, per_item=per_item, items=chosen, client=client)
+    write_table(result.items, out)
+    if asks is not None:
+        write_table(result.asks, asks)
+    summary = result.summary()
+    summary.update({"neighbour candidates": f"{result.settings['pool_size']} ({result.settings['pool_rule']})"})
+    emit_mapping(summary, format, f"plan written to {out}")
+    if format == "table":
+        top = result.items[result.items["status"] != "trusted"].sort_values(
+            ["needed", "stability"], ascending=[False, True], na_position="first").head(10)
+        emit(top[["item", "status", "ratings", "stability", "needed_label", "planned"]].rename(
+            columns={"needed_label": "needed"}), "table", "the items that need the most")
+        say(CAUTION)
+
+
+def update_command(
+        model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+        new_ratings: Path = typer.Argument(..., help="New ratings (same columns as training)."),
+        out: Path = typer.Option(..., "--out", help="Updated model file."),
+        new_items: Optional[Path] = typer.Option(None, "--new-items", help="Attributes of items new to the model."),
+        config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
+        format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """Fold new ratings into a model mid-campaign, re-solving only the items and users they touch.
+
+    A file whose every rating is already in the model with the same value (imported before)
+    is refused and nothing is written.
+
+    Example: hybrid update club.hybrid week1.csv --out club-week1.hybrid
+    """
+    check_format(format)
+    check_model_output(out)
+    model = HybridFactorModel.load(model_file)
+    cfg = settings_for(model, config)
+    table = read_ratings(new_ratings, cfg)
+    attrs = None
+    if new_items is not None:
+        attrs = read_attributes(new_items, cfg, model.features_.spec(), require_all=False)
+    before = int(model.item_counts_.sum())
+    counts = import_counts(model, table)
+    model.fold_in(table, attributes=attrs)     # refuses a file whose every rating is already in
+    model.save(out)
+    emit_mapping({"ratings added": counts["added"], "ratings changed": counts["changed"],
+                  "ratings already in the model (unchanged)": counts["unchanged"],
+                  "ratings now": int(model.item_counts_.sum()),
+                  "ratings before": before, "items touched": int(table["item"].nunique()),
+                  "users touched": int(table["user"].nunique())}, format, f"updated model written to {out}")
+
+
+def calibrate_command(
+        ratings: Path = typer.Argument(..., help="Ratings table."),
+        attributes: Path = typer.Argument(..., help="Item attribute table."),
+        config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
+        probes: int = typer.Option(120, "--probes", help="How many well-rated items to probe."),
+        seed: int = typer.Option(0, "--seed", help="Seed of the probe draw."),
+        format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """Check the planner's numbers: hide ratings of well-rated items and compare predicted with actual.
+
+    Example: hybrid calibrate ratings.csv lots.csv --config coffee.toml --probes 60
+    """
+    from hybrid.io.tables import check_items_described
+    from hybrid.planning.calibration import calibrate
+
+    check_format(format)
+    cfg = load_config(config)
+    params = model_params(cfg)
+    table = read_ratings(ratings, cfg)
+    attrs = read_attributes(attributes, cfg, params["schema"])
+    check_items_described(table, attrs, source=str(ratings), row_base=2)
+    params["holdout"] = 0.0
+    result = calibrate(table, attrs, params, n_probe=probes, k=cfg["plan"]["k"], draws=cfg["plan"]["draws"],
+                       seed=seed)
+    emit(result.round(4), format, "predicted against actual stability of probed items")
+
+
+def read_plan(path: Path) -> pd.DataFrame:
+    """A plan written by `hybrid plan` (CSV, JSON, JSON Lines or Parquet)."""
+    if not path.is_file():
+        raise InputError("plan file not found", file=str(path))
+    suffix = path.suffix.lower()
+    try:
+        if suffix == ".json":
+            df = pd.read_json(path, orient="records", dtype={"item": str, "model_fingerprint": str})
+        elif suffix in (".jsonl", ".ndjson"):
+            df = pd.read_json(path, orient="records", lines=True, dtype={"item": str, "model_fingerprint": str})
+        elif suffix == ".parquet":
+            df = pd.read_parquet(path).astype({"item": str}, errors="ignore")
+        else:
+            df = pd.read_csv(path, dtype={"item": str, "model_fingerprint": str})
+    except (ValueError, OSError) as exc:
+        raise InputError(f"not a readable plan ({str(exc).splitlines()[0]})", file=str(path)) from None
+    missing = [c for c in ("item", "status", "ratings", "needed") if c not in df.columns]
+    if missing:
+        raise InputError(f"not a plan: missing column '{missing[0]}'", file=str(path), column=missing[0])
+    return df
+
+
+def report_command(
+        model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+        out: Path = typer.Option(..., "--out", help="HTML file to write."),
+        plan_file: Optional[Path] = typer.Option(None, "--plan", help="A plan from `hybrid plan` (else one is made)."),
+        by: Optional[str] = typer.Option(None, "--by", help="Attribute column to count statuses by."),
+        config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's).")):
+    """Write one self-contained HTML report with plots for the campaign meeting.
+
+    Example: hybrid report club.hybrid --plan plan.csv --out report.html
+    """
+    from hybrid.app.report import build_report
+    from hybrid.planning.planner import plan
+
+    check_output(out, "report")
+    model = HybridFactorModel.load(model_file)
+    cfg = settings_for(model, config)
+    p = cfg["plan"]
+    items = read_plan(plan_file) if plan_file is not None else plan(model, **plan_arguments(cfg)).items
+    unknown = set(items["item"].astype(str)) - set(model.item_ids_)
+    if unknown:
+        raise InputError(f"the plan lists item '{sorted(unknown)[0]}', which the model does not know",
+                         file=str(plan_file))
+    page = build_report(model, items, k=p["k"], target=p["target"], draws=p["draws"], seed=p["seed"], by=by,
+                        liked=cfg["score"]["liked"])
+    with atomic_path(out) as tmp:
+        tmp.write_text(page, encoding="utf-8")
+    say(f"report written to {out} ({len(page) / 1e6:.2f} MB)")

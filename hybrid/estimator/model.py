@@ -1,0 +1,504 @@
+"""The fitted hybrid model: factors, attribute map, projection and prediction."""
+from __future__ import annotations
+
+import time
+import warnings
+
+import numpy as np
+import pandas as pd
+from sklearn.base import BaseEstimator
+from sklearn.exceptions import ConvergenceWarning, NotFittedError
+
+from hybrid.common.errors import InputError
+from hybrid.common.limits import threads
+from hybrid.core.launch import launch_offset
+from hybrid.core.penalties import NAMES as PENALTIES
+from hybrid.core.penalties import START, choose_penalties
+from hybrid.core.ranksearch import search_rank
+from hybrid.core.steps import Factors, RatingData, objective
+from hybrid.core.train import fit_factors
+from hybrid.engines.cluster import training_data
+from hybrid.estimator.features import AttributeEncoder
+from hybrid.estimator.persist import load_model, save_model
+from hybrid.estimator.predictions import Scores
+from hybrid.io.tables import (
+    check_items_described,
+    validate_attributes,
+    validate_ratings,
+)
+
+# the attributes a fit sets and a model file keeps; every other fitted attribute is derived
+# from them by ``set_fitted``, which is the only code that writes any of them
+FITTED = ("features_", "user_ids_", "item_ids_", "item_table_", "attributes_", "ratings_", "factors_", "mu_",
+          "sigma2_", "sigma2_new_", "prior_weight_", "lam_user_", "lam_item_", "lam_map_", "penalty_path_",
+          "rank_", "rank_path_", "launched_", "launch_offset_", "metrics_", "extras_", "settings_")
+_EMPTY = {"item_table_": lambda: None, "extras_": dict, "settings_": lambda: None}
+
+
+class HybridFactorModel(Scores, BaseEstimator):
+    """Low-rank rating factors fitted jointly with a map from item attributes.
+
+    Parameters
+    ----------
+    rank : int
+        Dimensions of the user and item vectors (with ``'held-out'`` rank
+        choice, the most allowed).  A rank larger than the data supports is
+        harmless at the default ``'auto'`` penalties, which grow with it: the
+        extra dimensions keep almost no prior spread (``dimension_spread_``,
+        ``dimensions_with_signal_``).  With ``rank_choice='held-out'`` the fit
+        grows the model one rank at a time and keeps the rank whose held-out
+        error is lowest (``rank_``, at most ``rank``; :mod:`hybrid.core.ranksearch`).
+    rank_choice : {'fixed', 'held-out'}
+        How the fitted rank ``rank_`` is chosen (see ``rank``).  ``'held-out'``
+        is opt-in for now: on MovieLens it makes every rank from 2 to 64 give
+        the same model, but it stops at rank 1 to 2 where 3 to 4 fit best
+        (:mod:`hybrid.core.ranksearch`).
+    lam_user, lam_item, lam_map : float or 'auto'
+        Regularisation of user blocks, of item blocks around their attribute
+        projection (the fixed prior, and the learned prior's starting point),
+        and of the map.  ``'auto'`` (the default) chooses the penalty on a
+        seeded tenth of the training ratings (:mod:`hybrid.core.penalties`), so it
+        grows with the rank; a number fixes it.  The values used are
+        ``lam_user_``, ``lam_item_`` and ``lam_map_``.
+    epochs : int
+        Most alternating epochs.
+    tol : float
+        Stop when the objective changes by less than this fraction.
+    seed : int
+        Seed of the initial item vectors and of the holdout draw.
+    schema : dict, optional
+        ``{column: 'text'|'category'|'tags'|'number'|'ignore'}`` or
+        ``{column: {"type": ..., "weight": w}}``; ``None`` uses no attributes
+        beyond an intercept.
+    prior : {'learned', 'fixed'}
+        ``'learned'`` estimates how far items fall from their projection
+        (cross-fitted EM, :mod:`hybrid.core.prior`) for the planner's uncertainty
+        (``prior_covariance_``); ``'fixed'`` takes ``sigma2_ / lam_item_ * I``.
+        The fit itself uses the chosen penalties either way.
+    map_weighting : {'none', 'precision', 'bias'}
+        ``'precision'`` weights each item's prior term, and so its pull on the
+        map, by ``n / (n + weight_half)`` for an item with ``n`` ratings: items
+        whose ratings barely determine them (often unlike the items a new one
+        will be compared with) pull the map less.  ``'bias'`` weights only the
+        bias coordinate's prior, by ``1 + n / weight_half``, so the bias part of
+        the map follows the items in proportion to their ratings (what a new
+        item's future ratings will average) while the vectors, which the planner
+        reads, keep one prior; the prior then couples no bias with a vector.
+    weight_half : float
+        With ``'precision'`` the rating count at which an item weighs half; with
+        ``'bias'`` the count that adds one to the bias weight.
+    launch_offset : {'learned', 'none'}
+        ``'learned'`` measures, after the fit, how far projections fall short on
+        the ratings items then get (out of sample, rating-weighted;
+        :mod:`hybrid.core.launch`) and adds that to the bias of every item that had
+        no ratings when the model was fitted, and of items added since: the
+        expected rating of a new item is then what its future ratings should
+        average, not what the typical item's do.  The value is
+        ``launch_offset_``; items that had ratings at the fit keep their
+        projection as prior mean.  Needs biases.
+    holdout : float
+        Fraction of ratings kept aside to report validation RMSE per epoch.
+    biases : bool
+        Fit user and item biases.
+    n_jobs : int
+        Threads for the block solves; ``-1`` (the default) uses every core the
+        process may run on (:func:`hybrid.common.limits.threads`).  The fitted model
+        does not depend on it.
+    text_max_features, text_min_df, text_ngrams, tag_separator
+        Attribute encoding, see :class:`hybrid.estimator.features.AttributeEncoder`.
+    engine : {'local', 'dask'}
+        Where the training's half-steps run: this process, or a Dask cluster
+        (:mod:`hybrid.engines.cluster`; needs the ``dask`` extra).  The fitted model is
+        the same either way.
+    address : str, optional
+        With ``'dask'``: the scheduler (``tcp://host:8786``); ``None`` starts a
+        local cluster of two worker processes for the fit.
+    partitions : int
+        With ``'dask'``: blocks per side of the rating matrix.
+    shared_dir : str, optional
+        With ``'dask'``: a folder every worker can read, where the partitioned
+        ratings are written for the fit (and removed after); ``None`` uses the
+        temporary folder, which suits a cluster on this machine only.
+
+    Examples
+    --------
+    >>> from hybrid.datasets.club import tasting_club
+    >>> club = tasting_club(n_members=300, n_lots=60, n_new=5, seed=1)
+    >>> m = HybridFactorModel(rank=4, epochs=5, schema=club.schema).fit(club.ratings, club.lots)
+    >>> m.predict(["M0001"], [club.new_lots.index[0]], attributes=club.new_lots).shape
+    (1,)
+    """
+
+    def __init__(self, *, rank=16, rank_choice="fixed", lam_user="auto", lam_item="auto", lam_map="auto", epochs=25,
+                 tol=1e-5, seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0,
+                 launch_offset="learned", holdout=0.0,
+                 biases=True, n_jobs=-1, text_max_features=2000, text_min_df=2, text_ngrams=1,
+                 tag_separator="|", engine="local", address=None, partitions=8,
+                 shared_dir=None):
+        self.rank = rank
+        self.rank_choice = rank_choice
+        self.lam_user = lam_user
+        self.lam_item = lam_item
+        self.lam_map = lam_map
+        self.epochs = epochs
+        self.tol = tol
+        self.seed = seed
+        self.schema = schema
+        self.prior = prior
+        self.map_weighting = map_weighting
+        self.weight_half = weight_half
+        self.launch_offset = launch_offset
+        self.holdout = holdout
+        self.biases = biases
+        self.n_jobs = n_jobs
+        self.text_max_features = text_max_features
+        self.text_min_df = text_min_df
+        self.text_ngrams = text_ngrams
+        self.tag_separator = tag_separator
+        self.engine = engine
+        self.address = address
+        self.partitions = partitions
+        self.shared_dir = shared_dir
+
+    def _check_params(self):
+        for name in ("lam_user", "lam_item", "lam_map"):
+            value = getattr(self, name)
+            if isinstance(value, str) and value == "auto":
+                continue
+            if not (isinstance(value, (int, float, np.floating)) and value > 0):
+                raise InputError(f"{name} must be a number > 0 or 'auto', found {value!r}")
+        if not (isinstance(self.rank, (int, np.integer)) and self.rank >= 1):
+            raise InputError(f"rank must be a whole number >= 1, found {self.rank!r}")
+        if self.rank_choice not in ("held-out", "fixed"):
+            raise InputError(f"rank_choice must be 'held-out' or 'fixed', found {self.rank_choice!r}")
+        if self.prior not in ("learned", "fixed"):
+            raise InputError(f"prior must be 'learned' or 'fixed', found {self.prior!r}")
+        if self.map_weighting not in ("none", "precision", "bias"):
+            raise InputError(f"map_weighting must be 'none', 'precision' or 'bias', found {self.map_weighting!r}")
+        if self.map_weighting == "bias" and not self.biases:
+            raise InputError("map_weighting 'bias' needs biases = true")
+        if self.launch_offset not in ("learned", "none"):
+            raise InputError(f"launch_offset must be 'learned' or 'none', found {self.launch_offset!r}")
+        if not 0 <= self.holdout < 1:
+            raise InputError(f"holdout must be in [0, 1), found {self.holdout!r}")
+        if self.engine not in ("local", "dask"):
+            raise InputError(f"engine must be 'local' or 'dask', found {self.engine!r}")
+        threads(self.n_jobs)
+        if not (isinstance(self.partitions, (int, np.integer)) and self.partitions >= 1):
+            raise InputError(f"partitions must be a whole number >= 1, found {self.partitions!r}")
+
+    # ----------------------------------------------------------------- fit
+    def fit(self, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None, on_epoch=None):
+        """Fit factors and map jointly.
+
+        Parameters
+        ----------
+        ratings : DataFrame
+            Columns ``user``, ``item``, ``rating``.
+        attributes : DataFrame, optional
+            Indexed by item id, columns per ``schema``.  Every rated item
+            needs a row; rows of unrated items are fitted as cold items.
+        on_epoch : callable, optional
+            Called with each epoch's record (for progress display).
+
+        Returns
+        -------
+        self
+        """
+        self._check_params()
+        t0 = time.perf_counter()
+        ratings = validate_ratings(ratings, {"user": "user", "item": "item", "rating": "rating"},
+                                   scale=(-np.inf, np.inf), source="ratings")
+        schema = self.schema or {}
+        if attributes is None:
+            attributes = pd.DataFrame(index=pd.Index(ratings["item"].unique(), name="item"))
+        attributes = validate_attributes(attributes, None, AttributeEncoder(schema).spec(),
+                                         source="attributes")
+        check_items_described(ratings, attributes)
+        features = AttributeEncoder(schema, self.text_max_features, self.text_min_df,
+                                    self.text_ngrams, self.tag_separator).fit(attributes)
+        item_ids = attributes.index.to_numpy(dtype=str)
+        user_ids = np.unique(ratings["user"].to_numpy(dtype=str))
+        u = np.searchsorted(user_ids, ratings["user"].to_numpy(dtype=str))
+        i = pd.Index(item_ids).get_indexer(ratings["item"])
+        r = ratings["rating"].to_numpy(float)
+        train, valid = self._holdout_split(len(r))
+        for name in FITTED:   # a refit starts from nothing
+            self.__dict__.pop(name, None)
+        self.set_fitted(
+            features_=features, item_ids_=item_ids, user_ids_=user_ids,
+            # the raw table, as text, for priorities and reports (never used to fit)
+            item_table_=attributes.astype(str).set_axis(pd.Index(item_ids, name="item"), axis=0),
+            attributes_=features.transform(attributes),
+            ratings_=(u[train].astype(np.int32), i[train].astype(np.int32), r[train]))
+        stages = {"prepare": time.perf_counter() - t0}
+        mark = time.perf_counter()
+        self.set_fitted(**self._choose_rank())
+        stages["rank search"], mark = time.perf_counter() - mark, time.perf_counter()
+        self.set_fitted(**self._choose_penalties())
+        stages["penalty search"], mark = time.perf_counter() - mark, time.perf_counter()
+        with training_data(self) as data:
+            validate = None
+            if valid.size:
+                uv, iv, rv = u[valid], i[valid], r[valid]
+                validate = lambda F: float(np.sqrt(np.mean((rv - self.predict_codes(F, data.mu, uv, iv)) ** 2)))
+            weight = self.weight_for_counts(data.item_counts())
+            F, sigma2, sigma2_new = fit_factors(
+                data, self.attributes_, rank=self.rank_, lam_user=self.lam_user_, lam_item=self.lam_item_,
+                lam_map=self.lam_map_, epochs=self.epochs, tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
+                biases=self.biases, n_jobs=threads(self.n_jobs), validate=validate, on_epoch=on_epoch)
+            final = objective(data, F, self.attributes_, self.lam_user_, self.lam_map_, weight)
+        self._warn_if_unconverged(F.history)
+        self.set_fitted(factors_=F, mu_=float(data.mu), sigma2_=float(sigma2), sigma2_new_=float(sigma2_new),
+                        prior_weight_=weight)
+        stages["epochs"] = sum(h["seconds"] for h in F.history)
+        stages["learned prior"] = F.timings.get("learned prior", 0.0)
+        stages["other fitting"] = time.perf_counter() - mark - stages["epochs"] - stages["learned prior"]
+        mark = time.perf_counter()
+        self.set_fitted(**self._launch(weight))
+        stages["launch offset"] = time.perf_counter() - mark
+        last = dict(F.history[-1])
+        # the final state (after the learned prior and the last item step) is what is reported
+        last["objective"], sse = final
+        last["train_rmse"] = float(np.sqrt(sse / data.nnz))
+        last["valid_rmse"] = validate(F) if validate else float("nan")
+        self.set_fitted(metrics_={
+            "n_users": len(self.user_ids_), "n_items": len(self.item_ids_),
+            "n_rated_items": int((self.item_counts_ > 0).sum()), "n_ratings": int(train.size),
+            "n_holdout": int(valid.size), "n_features": int(self.attributes_.shape[1]),
+            "epochs_run": len(F.history), "objective": last["objective"],
+            "rank": self.rank_, "rank_path": [list(p) for p in self.rank_path_],
+            "train_rmse": last["train_rmse"],
+            "valid_rmse": last["valid_rmse"] if valid.size else None,
+            "sigma2": self.sigma2_, "sigma2_new": self.sigma2_new_, "lam_user": self.lam_user_,
+            "lam_item": self.lam_item_, "lam_map": self.lam_map_,
+            "penalty_path": [[p, e] for p, e in self.penalty_path_],
+            "variance_scales": list(F.scales), "launch_offset": self.launch_offset_,
+            "seconds": time.perf_counter() - t0, "stage_seconds": stages})
+        return self
+
+    def _warn_if_unconverged(self, history):
+        last = history[-1]["objective"]
+        before = history[-2]["objective"] if len(history) > 1 else np.inf
+        if self.tol > 0 and len(history) == self.epochs and abs(before - last) > self.tol * abs(last):
+            warnings.warn(f"the fit used all {self.epochs} epochs before the objective settled "
+                          f"(last change {abs(before - last) / abs(last):.1e} of it, tol {self.tol:g}); "
+                          "more epochs may fit better", ConvergenceWarning, stacklevel=3)
+
+    def _choose_penalties(self) -> dict:
+        """``lam_user_``, ``lam_item_``, ``lam_map_`` and ``penalty_path_`` (empty when all fixed)."""
+        given = {name: getattr(self, name) for name in PENALTIES}
+        path = []
+        if all(given[name] != "auto" for name in PENALTIES):
+            chosen = {name: float(v) for name, v in given.items()}
+        else:
+            shape = (len(self.user_ids_), len(self.item_ids_))
+            chosen, path = choose_penalties(
+                self.ratings_, shape, self.attributes_, rank=self.rank_, given=given, biases=self.biases,
+                seed=self.seed, n_jobs=threads(self.n_jobs))
+        return {"penalty_path_": path, **{name + "_": float(chosen[name]) for name in PENALTIES}}
+
+    def _choose_rank(self) -> dict:
+        """``rank_`` and ``rank_path_`` (the rank search's levels; empty when fixed)."""
+        if self.rank_choice == "fixed":
+            return {"rank_": int(self.rank), "rank_path_": []}
+        shape = (len(self.user_ids_), len(self.item_ids_))
+        # the levels use the given penalties, or the search's starting ones; the penalties
+        # are then chosen at the rank found (so any larger allowed rank gives the same fit)
+        lam = {name: START[name] if getattr(self, name) == "auto" else float(getattr(self, name))
+               for name in PENALTIES}
+        rank, path = search_rank(
+            self.ratings_, shape, self.attributes_, most=int(self.rank), **lam, biases=self.biases,
+            seed=self.seed, n_jobs=threads(self.n_jobs))
+        return {"rank_": rank, "rank_path_": path}
+
+    def _holdout_split(self, n):
+        idx = np.arange(n)
+        if not self.holdout:
+            return idx, idx[:0]
+        mask = np.random.default_rng(self.seed + 1).random(n) < self.holdout
+        return idx[~mask], idx[mask]
+
+    def rating_data(self) -> RatingData:
+        """The model's ratings as the trainer's :class:`~hybrid.core.steps.RatingData`."""
+        u, i, r = self.ratings_
+        mu = getattr(self, "mu_", None)
+        return RatingData.from_codes(u, i, r, len(self.user_ids_), len(self.item_ids_), mu)
+
+    def weight_for_counts(self, counts):
+        """Per-item multiplier of the prior term (ones unless the map is weighted)."""
+        counts = np.asarray(counts, float)
+        if self.map_weighting == "none":
+            return np.ones(len(counts))
+        if self.map_weighting == "bias":   # (n, d): the bias coordinate's weight, ones elsewhere
+            weight = np.ones((len(counts), self.rank_ + 1))
+            weight[:, 0] = 1.0 + counts / self.weight_half
+            return weight
+        # poorly rated items pull the map less (they are a selected, unlike set:
+        # rarely rated products are rated lower), and no weight is zero.  An item
+        # with no ratings takes no part in the map fit, so its weight only sets its
+        # prior: it keeps the learned spread around its projection (weight 1)
+        return np.where(counts == 0, 1.0, np.maximum(counts / (counts + self.weight_half), 0.05))
+
+    def _launch(self, weight) -> dict:
+        """Measure the launch offset and move the unrated items' bias by it (their
+        blocks are their prior means)."""
+        launched = self.item_counts_ == 0
+        offset = 0.0
+        if self.launch_offset == "learned":
+            u, i, r = self.ratings_
+            offset = launch_offset(u, i, r, self.mu_, self.factors_, self.attributes_, weight, self.lam_map_)
+        self.set_fitted(launched_=launched, launch_offset_=offset)
+        self.factors_.item[:, 0] += self.prior_shift()
+        return {"factors_": self.factors_}
+
+    def prior_shift(self, rows=None):
+        """What each item's prior mean adds to its projection's bias (zeros without biases)."""
+        launched = self.launched_ if rows is None else self.launched_[rows]
+        return self.launch_offset_ * launched if self.biases else np.zeros(len(launched))
+
+    def set_fitted(self, **state):
+        """Set fitted attributes and derive the others: the one place fitted state is written.
+
+        Fitting, loading a model file, folding in ratings and adding items all come here, so
+        the counts, the rating range, ``history_``, ``n_iter_`` and the metrics' counts always
+        agree with the ratings and factors the model holds.  Names are those of ``FITTED``;
+        attributes not given keep their values.  Returns ``self``.
+        """
+        unknown = sorted(set(state) - set(FITTED))
+        if unknown:
+            raise TypeError(f"{unknown[0]!r} is not a fitted attribute of HybridFactorModel")
+        for name in FITTED:
+            if name in state:
+                self.__dict__[name] = state[name]
+            elif name in _EMPTY and name not in self.__dict__:
+                self.__dict__[name] = _EMPTY[name]()
+        if "ratings_" in self.__dict__:
+            u, i, r = self.ratings_
+            self.item_counts_ = np.bincount(i, minlength=len(self.item_ids_))
+            self.user_counts_ = np.bincount(u, minlength=len(self.user_ids_))
+            self.rating_range_ = (float(np.min(r)), float(np.max(r))) if len(r) else (np.nan, np.nan)
+        if "factors_" in self.__dict__:
+            self.history_ = list(self.factors_.history)
+            self.n_iter_ = len(self.history_)
+        if self.__dict__.get("metrics_"):
+            self.metrics_.update(n_users=len(self.user_ids_), n_items=len(self.item_ids_),
+                                 n_rated_items=int((self.item_counts_ > 0).sum()),
+                                 n_ratings=int(len(self.ratings_[2])))
+        return self
+
+    # ------------------------------------------------------------- access
+    def check_fitted(self) -> Factors:
+        """The fitted blocks, or :class:`NotFittedError` before ``fit``."""
+        if "factors_" not in self.__dict__:
+            raise NotFittedError("this model is not fitted yet; call fit() first")
+        return self.factors_
+
+    @property
+    def item_blocks_(self):
+        """Rows ``[b_i, x_i]`` of every known item."""
+        return self.check_fitted().item
+
+    @property
+    def user_blocks_(self):
+        """Rows ``[b_u, theta_u]`` of every known user."""
+        return self.check_fitted().user
+
+    @property
+    def fingerprint_(self):
+        """16 hex digits of a SHA-256 over the ids, the fitted blocks and the rating counts:
+        what a plan was made from, so a report can refuse a plan from another model (or from
+        this model before an ``update``)."""
+        import hashlib
+
+        F = self.check_fitted()
+        h = hashlib.sha256()
+        for part in (self.user_ids_, self.item_ids_):
+            h.update("\x1f".join(map(str, part)).encode("utf-8") + b"\x1e")
+        for array in (F.user, F.item, self.item_counts_):
+            h.update(np.ascontiguousarray(array, dtype=np.float64).tobytes())
+        return h.hexdigest()[:16]
+
+    @property
+    def map_(self):
+        """The attribute map ``W`` (features x block)."""
+        return self.check_fitted().W
+
+    @property
+    def prior_precision_(self):
+        """Item prior precision ``P`` of the fit (block x block); the prior covariance is
+        :attr:`prior_covariance_` = ``sigma2_ * P^-1``."""
+        return self.check_fitted().P
+
+    @property
+    def prior_covariance_(self):
+        """How far an item's block falls from its attribute projection (covariance): the
+        learned spread with ``prior='learned'``, else ``sigma2_ * P^-1``."""
+        F = self.check_fitted()
+        return F.spread if F.spread is not None else self.sigma2_ * np.linalg.inv(F.P)
+
+    @property
+    def dimension_spread_(self):
+        """Standard deviation of the item prior along each of its principal directions,
+        largest first (the bias left out): how much each dimension carries once the
+        attributes are known.  Principal directions, because a factor basis is only
+        fixed up to a rotation and the prior's own axes are not."""
+        Psi = self.prior_covariance_[1:, 1:] if self.biases else self.prior_covariance_
+        return np.sqrt(np.clip(np.linalg.eigvalsh(Psi), 0.0, None))[::-1]
+
+    @property
+    def dimensions_with_signal_(self):
+        """The fewest principal directions that hold 90% of the item prior's variance.
+
+        A rank larger than the data supports leaves its extra directions with almost
+        no spread, so this count stays put as the rank grows (an explained-variance
+        cut, as in principal components; common practice, the 90% is our choice).
+        """
+        var = self.dimension_spread_ ** 2
+        return int(np.searchsorted(np.cumsum(var) / max(var.sum(), 1e-300), 0.9) + 1)
+
+    @property
+    def new_rating_precision_(self):
+        """The prior precision on the scale of a new rating, ``sigma2_new_ * Psi^-1``:
+        what an item solved from ratings its raters were not fitted to uses."""
+        return self.sigma2_new_ * np.linalg.inv(self.prior_covariance_)
+
+    # ------------------------------------------------------------ fold-in
+    def fold_in(self, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None):
+        """Add new ratings and re-solve only the users and items they touch.
+
+        New items need an attribute row; new users are added.  See
+        :func:`hybrid.estimator.updates.fold_in`.
+
+        Returns
+        -------
+        self
+        """
+        from hybrid.estimator.updates import fold_in
+        return fold_in(self, ratings, attributes)
+
+    def add_items(self, attributes: pd.DataFrame):
+        """Add items with no ratings (their blocks are their projections); known ids are skipped.
+
+        Returns
+        -------
+        self
+        """
+        from hybrid.estimator.updates import add_items
+        return add_items(self, attributes)
+
+    # --------------------------------------------------------------- misc
+    def related(self, items, k: int = 5, metric: str = "euclidean", among=None,
+                attributes: pd.DataFrame | None = None) -> pd.DataFrame:
+        """Nearest items by distance between item vectors; see :func:`hybrid.estimator.related.related`."""
+        from hybrid.estimator.related import related
+        return related(self, items, k=k, metric=metric, among=among, attributes=attributes)
+
+    def save(self, path) -> None:
+        """Write the model file (JSON manifest + arrays, no pickle; :mod:`hybrid.estimator.persist`)."""
+        save_model(self, path)
+
+    @classmethod
+    def load(cls, path) -> "HybridFactorModel":
+        """Read a model file written by :meth:`save` (also ``hybrid.load``)."""
+        return load_model(path, cls)
