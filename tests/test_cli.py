@@ -288,15 +288,15 @@ def test_plan_settings_share_one_rule(fitted):
     from hybrid.common.errors import InputError
     from hybrid.core.posterior import _full_pool
 
-    with pytest.raises(InputError, match=r"setting 'plan.k': expected a whole number >= 1, found 0"):
+    with pytest.raises(InputError, match=r"setting 'plan.k' must be a whole number >= 1, found 0"):
         load_config(overrides={"plan": {"k": 0}})
-    with pytest.raises(InputError, match="setting 'plan.draws': expected a whole number >= 2, found 1"):
+    with pytest.raises(InputError, match="setting 'plan.draws' must be a whole number >= 2, found 1"):
         load_config(overrides={"plan": {"draws": 1}})
     with pytest.raises(ValueError, match="k=0"):
         _full_pool(np.zeros((3, 2)), np.zeros((5, 2)), np.zeros(5), np.zeros((3, 0), int), np.zeros(3, int), 0)
     with pytest.raises(InputError, match="k must be a whole number >= 1, found 0"):
         hybrid.plan(fitted, k=0)
-    with pytest.raises(InputError, match="setting 'score.liked': expected a number, found nan"):
+    with pytest.raises(InputError, match="setting 'score.liked' must be a number, found nan"):
         load_config(overrides={"score": {"liked": float("nan")}})
     from hybrid.estimator.batch import score_items
     with pytest.raises(InputError, match="liked must be a number, found nan"):

@@ -16,6 +16,7 @@ distributed = pytest.importorskip("distributed")
 from hybrid import HybridFactorModel, load, plan  # noqa: E402
 from hybrid.datasets.club import tasting_club  # noqa: E402
 from hybrid.engines.cluster import ClusterRatingData  # noqa: E402
+from hybrid.engines.engine import Engine  # noqa: E402
 from hybrid.estimator.batch import score_items  # noqa: E402
 
 FIT = dict(rank=6, epochs=8, text_min_df=1)
@@ -57,8 +58,8 @@ def test_cluster_trainer_equals_local(cluster, data, local_model, monkeypatch):
     reductions = []
     original = ClusterRatingData.map_rhs
     monkeypatch.setattr(ClusterRatingData, "map_rhs", lambda self, *a: reductions.append(1) or original(self, *a))
-    remote = HybridFactorModel(**FIT, schema=data.schema, engine="dask", address=c.scheduler_address,
-                               partitions=4).fit(data.ratings, data.lots)
+    remote = HybridFactorModel(**FIT, schema=data.schema).fit(
+        data.ratings, data.lots, engine=Engine("dask", c.scheduler_address, partitions=4))
     _assert_same_model(local_model, remote)
     # the map steps went through the tree reduction on the workers (one per epoch at least)
     assert len(reductions) >= FIT["epochs"]
@@ -69,8 +70,8 @@ def test_cluster_trainer_with_bias_weighting_equals_local(cluster, data):
     c, _ = cluster
     fit = {**FIT, "epochs": 4, "map_weighting": "bias", "weight_half": 3.0}
     local = HybridFactorModel(**fit, schema=data.schema).fit(data.ratings, data.lots)
-    remote = HybridFactorModel(**fit, schema=data.schema, engine="dask", address=c.scheduler_address,
-                               partitions=3).fit(data.ratings, data.lots)
+    remote = HybridFactorModel(**fit, schema=data.schema).fit(
+        data.ratings, data.lots, engine=Engine("dask", c.scheduler_address, partitions=3))
     _assert_same_model(local, remote)
 
 
@@ -97,8 +98,8 @@ def test_a_worker_killed_during_training_changes_nothing(data, local_model):
                 killed.append(pids[0])
                 threading.Timer(0.05, os.kill, (pids[0], signal.SIGKILL)).start()
 
-        remote = HybridFactorModel(**FIT, schema=data.schema, engine="dask", address=c.scheduler_address,
-                                   partitions=4).fit(data.ratings, data.lots, on_epoch=kill_soon)
+        remote = HybridFactorModel(**FIT, schema=data.schema).fit(
+            data.ratings, data.lots, on_epoch=kill_soon, engine=Engine("dask", c.scheduler_address, partitions=4))
         _assert_same_model(local_model, remote)
         time.sleep(0.2)
         with pytest.raises(ProcessLookupError):
@@ -192,7 +193,10 @@ def test_commands_run_on_the_cluster_with_the_same_outputs(cluster, tmp_path):
         assert r.exit_code == 0, r.output
     here, there = (load(tmp_path / f"{w}.hybrid") for w in ("here", "there"))
     _assert_same_model(here, there)
-    assert there.engine == "dask" and there.address is None   # the started cluster is gone
+    # where it ran is provenance only: the same settings, and the started cluster's address kept
+    assert there.get_params() == here.get_params()
+    assert there.metrics_["engine"]["kind"] == "dask" and there.metrics_["engine"]["partitions"] == 3
+    assert here.metrics_["engine"] == {"kind": "local", "address": None, "partitions": 8, "shared_dir": None}
     for where, flags in (("here", []), ("there", ["--address", c.scheduler_address])):
         r = run("plan", tmp_path / "here.hybrid", "--budget", 40, "--out", tmp_path / f"plan-{where}.csv",
                 "--asks", tmp_path / f"asks-{where}.csv", *flags)
@@ -222,7 +226,7 @@ def test_without_the_extra_the_dask_engine_says_what_to_install(monkeypatch, dat
     from hybrid.common.errors import InputError
     monkeypatch.setitem(sys.modules, "distributed", None)   # as if not installed
     with pytest.raises(InputError, match=r"from the clone: pip install -e '\.\[dask\]'"):
-        HybridFactorModel(**FIT, schema=data.schema, engine="dask").fit(data.ratings, data.lots)
+        HybridFactorModel(**FIT, schema=data.schema).fit(data.ratings, data.lots, engine=Engine("dask"))
 
 
 def test_every_rating_data_method_matches_the_local_one(cluster):

@@ -11,7 +11,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 def test_default_toml_documents_exactly_the_defaults():
-    assert tomllib.loads((ROOT / "configs/default.toml").read_text()) == DEFAULTS
+    assert tomllib.loads((ROOT / "configs/default.toml").read_text()) == DEFAULTS   # and tests/test_settings.py: the file is the table rendered
 
 
 def test_shipped_configs_load():
@@ -23,7 +23,7 @@ def test_shipped_configs_load():
 def test_bad_values_are_named(tmp_path):
     p = tmp_path / "c.toml"
     p.write_text("[model]\nprior = 'magic'\n")
-    with pytest.raises(InputError, match="setting 'model.prior': expected 'fixed' or 'learned', found 'magic'"):
+    with pytest.raises(InputError, match="setting 'model.prior' must be one of 'learned', 'fixed', found 'magic'"):
         load_config(p)
     p.write_text("[modle]\nrank = 3\n")
     with pytest.raises(InputError, match="unknown setting 'modle' \\(did you mean 'model'\\?\\)"):

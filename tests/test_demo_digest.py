@@ -58,8 +58,9 @@ EXPECTED = {
     'model array table_margin': '619358dee8cda75038e98ba15c4680df4d3b894043cd1aa72e8ebea1c547a0d6',
     'model fitted scalars': '22b2d27e07a0da276b351d4005580e927e91e8ca440328385336315bdc94a436',
     # changed on purpose in the move: the metrics' counts follow the items added after the fit
-    # (n_items 600 -> 640 in the demo's file); nothing else in the metrics changed
-    'model metrics': 'f86a3645619c115004990dd1e8ded8770d88f6cf9d20eb62f20f50bda6c987cf',
+    # (n_items 600 -> 640 in the demo's file); then where the fit ran joined them as provenance
+    # (metrics_["engine"], no longer a setting); nothing else in the metrics changed
+    'model metrics': '4799b78662010c562ec5eb0f37374d4d49be932b00d49db92ede5ed7da2644e7',
     'model history': '3266c2a2e51a8e735deda61caf6001cf2c8a500bed91156dbc8e84e2262e9af2',
     'related lists euclidean': 'a817a8bac9c08588469c28565dfcbcc442c1b9028e49c39ef42dbcc5f0188fa3',
     'related lists cosine': 'f1d22289a14c8e8382a239534d97405650e9d0332f80778ae7ddc63acfa883df',

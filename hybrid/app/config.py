@@ -1,7 +1,8 @@
 """TOML settings: defaults, loading, and validation of keys.
 
-Every setting has a default here; ``configs/default.toml`` documents the
-same values (a test keeps the two equal).  A user's file overrides any
+Every setting's default, rule and help live in one table,
+:data:`hybrid.common.limits.SETTINGS`; ``configs/default.toml`` is rendered from it
+(:func:`render_defaults`; a test keeps the file equal to the rendering).  A user's file overrides any
 subset.  Unknown keys are an error that names the key and suggests the
 nearest known one, because a misspelt key silently ignored is a setting
 the user believes is in force and is not.
@@ -9,75 +10,17 @@ the user believes is in force and is not.
 from __future__ import annotations
 
 import copy
+import json
 import tomllib
 from pathlib import Path
 from typing import Any
 
 from hybrid.common.errors import InputError, did_you_mean
-from hybrid.common.limits import JOBS, PLAN, SCORE, threads
+from hybrid.common.limits import ESTIMATOR, SETTINGS, defaults
 
-DEFAULTS: dict[str, dict[str, Any]] = {
-    "ratings": {
-        "user": "user",
-        "item": "item",
-        "rating": "rating",
-        "timestamp": "",
-        "scale": [1.0, 5.0],
-        "duplicates": "error",
-        "delimiter": ",",
-    },
-    "attributes": {
-        "id": "item",
-        "tag_separator": "|",
-        "delimiter": ",",
-        "columns": {},
-    },
-    "features": {
-        "text_max_features": 2000,
-        "text_min_df": 2,
-        "text_ngrams": 1,
-    },
-    "model": {
-        "rank": 16,
-        "rank_choice": "fixed",
-        "lam_user": "auto",
-        "lam_item": "auto",
-        "lam_map": "auto",
-        "epochs": 25,
-        "tol": 1e-5,
-        "seed": 0,
-        "prior": "learned",
-        "map_weighting": "none",
-        "weight_half": 20.0,
-        "launch_offset": "learned",
-        "holdout": 0.05,
-        "n_jobs": -1,
-    },
-    "score": {
-        "liked": 4.0,
-        "audience": 10,
-        "neighbours": 5,
-        "chunk": 2000,
-    },
-    "plan": {
-        "target": 0.8,
-        "k": 10,
-        "draws": 64,
-        "max_needed": 200,
-        "responders": "active",
-        "responder_threshold": 0.0,
-        "pool_min_ratings": 20,
-        "aim": "reach",
-        "seed": 0,
-    },
-    "engine": {
-        "kind": "local",
-        "address": "",
-        "partitions": 8,
-        "workers": 2,
-        "shared_dir": "",
-    },
-}
+# the defaults, from the one table of settings (hybrid.common.limits.SETTINGS)
+DEFAULTS: dict[str, dict[str, Any]] = {section: defaults(section) for section in SETTINGS}
+DEFAULTS["attributes"]["columns"] = {}
 
 COLUMN_TYPES = ("text", "category", "tags", "number", "ignore")
 _FREE_TABLES = {("attributes", "columns")}
@@ -163,75 +106,53 @@ def column_schema(cfg: dict) -> dict[str, dict]:
     return out
 
 
-def _penalty_ok(value) -> bool:
-    """A penalty is ``'auto'`` (chosen on held-out ratings) or a number > 0."""
-    if isinstance(value, str):
-        return value == "auto"
-    return isinstance(value, (int, float)) and not isinstance(value, bool) and value > 0
-
-
-def _jobs_ok(value) -> bool:
-    try:
-        threads(value)
-    except InputError:
-        return False
-    return True
-
-
 def validate(cfg: dict, source: str) -> None:
-    """Check value types and ranges that would otherwise fail deep inside."""
-    m = cfg["model"]
-    checks = [
-        (isinstance(m["rank"], int) and m["rank"] >= 1, "model.rank", "a whole number >= 1"),
-        (m["rank_choice"] in ("held-out", "fixed"), "model.rank_choice", "'held-out' or 'fixed'"),
-        *[(_penalty_ok(m[name]), f"model.{name}", "a number > 0 or 'auto'")
-          for name in ("lam_user", "lam_item", "lam_map")],
-        (isinstance(m["epochs"], int) and m["epochs"] >= 1, "model.epochs", "a whole number >= 1"),
-        (m["prior"] in ("fixed", "learned"), "model.prior", "'fixed' or 'learned'"),
-        (m["map_weighting"] in ("none", "precision", "bias"), "model.map_weighting", "'none', 'precision' or 'bias'"),
-        (m["launch_offset"] in ("learned", "none"), "model.launch_offset", "'learned' or 'none'"),
-        (0 <= m["holdout"] < 1, "model.holdout", "a fraction in [0, 1)"),
-        (_jobs_ok(m["n_jobs"]), "model.n_jobs", JOBS),
-        (cfg["ratings"]["duplicates"] in ("error", "last"), "ratings.duplicates", "'error' or 'last'"),
-        (len(cfg["ratings"]["scale"]) == 2 and cfg["ratings"]["scale"][0] < cfg["ratings"]["scale"][1],
-         "ratings.scale", "[low, high] with low < high"),
-        *[(rules[name][0](value), f"{section}.{name}", rules[name][1])
-          for section, rules in (("plan", PLAN), ("score", SCORE))
-          for name, value in cfg[section].items() if name in rules],
-        (cfg["engine"]["kind"] in ("local", "dask"), "engine.kind", "'local' or 'dask'"),
-        (isinstance(cfg["engine"]["address"], str), "engine.address", "a scheduler address such as "
-         "'tcp://10.0.0.5:8786', or '' to start a local cluster"),
-        (isinstance(cfg["engine"]["partitions"], int) and cfg["engine"]["partitions"] >= 1,
-         "engine.partitions", "a whole number >= 1"),
-        (isinstance(cfg["engine"]["workers"], int) and cfg["engine"]["workers"] >= 1,
-         "engine.workers", "a whole number >= 1"),
-        (isinstance(cfg["engine"]["shared_dir"], str), "engine.shared_dir", "a folder path, or ''"),
-    ]
-    for ok, key, expected in checks:
-        if not ok:
-            section, name = key.split(".")
-            raise InputError(f"setting '{key}': expected {expected}, found {cfg[section][name]!r}", file=source)
+    """Check every value against its rule, with the same words as the library's checks."""
+    for section, table in SETTINGS.items():
+        for name, value in cfg[section].items():
+            rule = table.get(name)
+            if rule is not None and not rule.ok(value):
+                raise InputError(f"setting '{section}.{name}' must be {rule.allowed}, found {value!r}", file=source)
+    if cfg["model"]["map_weighting"] == "bias" and not cfg["model"]["biases"]:
+        raise InputError("setting 'model.map_weighting' = 'bias' needs model.biases = true", file=source)
     column_schema(cfg)
 
 
 def model_params(cfg: dict) -> dict:
     """The keyword arguments of :class:`hybrid.HybridFactorModel` from settings."""
-    m = cfg["model"]
-    return {
-        "rank": m["rank"], "rank_choice": m["rank_choice"],
-        **{name: m[name] if m[name] == "auto" else float(m[name]) for name in ("lam_user", "lam_item", "lam_map")},
-        "epochs": m["epochs"], "tol": float(m["tol"]),
-        "seed": m["seed"], "prior": m["prior"], "map_weighting": m["map_weighting"],
-        "weight_half": float(m["weight_half"]), "launch_offset": m["launch_offset"],
-        "holdout": float(m["holdout"]), "n_jobs": m["n_jobs"],
-        "schema": column_schema(cfg),
-        "text_max_features": cfg["features"]["text_max_features"],
-        "text_min_df": cfg["features"]["text_min_df"],
-        "text_ngrams": cfg["features"]["text_ngrams"],
-        "tag_separator": cfg["attributes"]["tag_separator"],
-        "engine": cfg["engine"]["kind"], "address": cfg["engine"]["address"] or None,
-        "partitions": cfg["engine"]["partitions"], "shared_dir": cfg["engine"]["shared_dir"] or None,
-    }
+    values = {**cfg["model"], **cfg["features"], "tag_separator": cfg["attributes"]["tag_separator"]}
+    return {"schema": column_schema(cfg), **{name: values[name] for name in ESTIMATOR}}
+
+
+def render_defaults() -> str:
+    """``configs/default.toml``: every setting the file may hold, its default and its help."""
+    lines = ["# Every setting hybrid knows, with its default.  A config file may set any subset;",
+             "# an unknown key is an error (with the nearest known key suggested).",
+             "# Rendered from hybrid.common.limits.SETTINGS (python -c 'from hybrid.app.config import",
+             "# render_defaults; print(render_defaults(), end=\"\")' > configs/default.toml)."]
+    for section, table in SETTINGS.items():
+        lines += ["", f"[{section}]"]
+        for name, setting in table.items():
+            if not setting.in_file:
+                continue
+            head = f"{name} = {_toml_value(setting.default)}"
+            first, *rest = setting.help.split("\n")
+            width = max(25, len(head) + 2)
+            lines.append(f"{head:<{width}}# {first}")
+            lines += [f"{'':<{width}}# {more}" for more in rest]
+        if section == "attributes":
+            lines += ["", '# One entry per attribute column: "text", "category", "tags", "number" or "ignore",',
+                      '# or a table with a weight, e.g.  notes = { type = "text", weight = 2.0 }',
+                      "[attributes.columns]"]
+    return "\n".join(lines) + "\n"
+
+
+def _toml_value(value) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return json.dumps(value)   # a TOML basic string for the plain text used here
+    return json.dumps(value) if isinstance(value, list) else repr(value)
 
 
 def with_engine(cfg: dict, kind: str | None = None, address: str | None = None,

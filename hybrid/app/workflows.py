@@ -5,6 +5,7 @@ from pathlib import Path
 
 from hybrid.app.config import model_params
 from hybrid.engines.cluster import engine_client
+from hybrid.engines.engine import Engine
 from hybrid.estimator.model import HybridFactorModel
 from hybrid.io.tables import check_items_described, read_attributes, read_ratings
 
@@ -21,11 +22,9 @@ def train_model(ratings: Path, attributes: Path, cfg: dict, on_epoch=None) -> Hy
     attrs = read_attributes(attributes, cfg, params["schema"])
     check_items_described(table, attrs, source=str(ratings), row_base=2)
     with engine_client(cfg) as client:
-        if client is not None:  # a cluster started here serves the fit by its address
-            params["address"] = client.scheduler.address
-        model = HybridFactorModel(**params)
-        model.fit(table, attrs, on_epoch=on_epoch)
-    model.address = cfg["engine"]["address"] or None  # not a cluster that is gone
+        # a cluster started here serves the fit by its address
+        engine = Engine.from_settings(cfg["engine"], client.scheduler.address if client is not None else None)
+        model = HybridFactorModel(**params).fit(table, attrs, on_epoch=on_epoch, engine=engine)
     model.set_fitted(settings_=cfg)
     return model
 

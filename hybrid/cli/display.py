@@ -15,8 +15,19 @@ from rich.table import Table
 from sklearn.exceptions import ConvergenceWarning
 
 from hybrid.common.errors import InputError
+from hybrid.common.limits import SETTINGS
 
 FORMATS = ("table", "csv", "json")
+
+def setting_help(section: str, name: str) -> str:
+    """A flag's help: the setting's own help from the one table, what it allows, and where its
+    default comes from."""
+    setting = SETTINGS[section][name]
+    default = ("" if setting.default is None else
+               f"; default: the settings' [{section}] {name}, {setting.default!r} unless changed")
+    text = setting.help.replace("\n", " ")
+    return f"{text[0].upper()}{text[1:]} ({setting.allowed}{default})."
+
 
 ENGINE_HELP = "Where to run: local (this process) or dask (a cluster; needs the dask extra)."
 ADDRESS_HELP = "Dask scheduler address, e.g. tcp://10.0.0.5:8786 (default: start a local cluster)."

@@ -25,6 +25,7 @@ from hybrid.cli.display import (
     emit_mapping,
     guarded,
     say,
+    setting_help,
 )
 from hybrid.common.errors import InputError, did_you_mean_id
 from hybrid.estimator.model import HybridFactorModel
@@ -110,10 +111,10 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
           new_items: Path = typer.Argument(..., help="Attribute table of items to score."),
           out: Path = typer.Option(..., "--out", help="Output: .csv, .json, .jsonl or .parquet."),
           config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
-          liked: Optional[float] = typer.Option(None, "--liked", help="Rating that counts as liked."),
-          audience: Optional[int] = typer.Option(None, "--audience", help="Users listed per item."),
-          neighbours: Optional[int] = typer.Option(None, "--neighbours", help="Nearest items listed."),
-          chunk: Optional[int] = typer.Option(None, "--chunk", help="Items scored at a time."),
+          liked: Optional[float] = typer.Option(None, "--liked", help=setting_help("score", "liked")),
+          audience: Optional[int] = typer.Option(None, "--audience", help=setting_help("score", "audience")),
+          neighbours: Optional[int] = typer.Option(None, "--neighbours", help=setting_help("score", "neighbours")),
+          chunk: Optional[int] = typer.Option(None, "--chunk", help=setting_help("score", "chunk")),
           engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
           address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
           format: str = typer.Option("table", "--format", help="table, csv or json (the summary).")):

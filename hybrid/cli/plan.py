@@ -16,6 +16,7 @@ from hybrid.cli.display import (
     emit,
     emit_mapping,
     say,
+    setting_help,
 )
 from hybrid.common.errors import InputError
 from hybrid.estimator.model import HybridFactorModel
@@ -28,13 +29,13 @@ def plan_command(
         model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
         out: Path = typer.Option(..., "--out", help="The plan, one row per item (.csv, .json, .jsonl, .parquet)."),
         asks: Optional[Path] = typer.Option(None, "--asks", help="Whom to ask: item, user, rank, gain, expected rating."),
-        target: Optional[float] = typer.Option(None, "--target", help="Stability an item must reach (0-1)."),
-        k: Optional[int] = typer.Option(None, "--k", help="Length of the neighbour list."),
-        budget: Optional[int] = typer.Option(None, "--budget", help="Ratings to collect in all."),
-        per_user: Optional[int] = typer.Option(None, "--per-user", help="Most asks per user."),
-        per_item: Optional[int] = typer.Option(None, "--per-item", help="Most ratings planned per item."),
+        target: Optional[float] = typer.Option(None, "--target", help=setting_help("plan", "target")),
+        k: Optional[int] = typer.Option(None, "--k", help=setting_help("plan", "k")),
+        budget: Optional[int] = typer.Option(None, "--budget", help=setting_help("plan", "budget")),
+        per_user: Optional[int] = typer.Option(None, "--per-user", help=setting_help("plan", "per_user")),
+        per_item: Optional[int] = typer.Option(None, "--per-item", help=setting_help("plan", "per_item")),
         priority: Optional[str] = typer.Option(None, "--priority", help="Attribute column of item priority."),
-        aim: Optional[str] = typer.Option(None, "--aim", help="reach (items to target) or gain (total stability)."),
+        aim: Optional[str] = typer.Option(None, "--aim", help=setting_help("plan", "aim")),
         new_items: Optional[Path] = typer.Option(None, "--new-items", help="Attribute table of unrated items to include."),
         only: Optional[Path] = typer.Option(None, "--items", help="Plan only the items in this table's item column."),
         config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),

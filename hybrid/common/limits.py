@@ -18,6 +18,7 @@ from __future__ import annotations
 import math
 import numbers
 import os
+from dataclasses import dataclass
 
 from hybrid.common.errors import InputError
 
@@ -40,29 +41,150 @@ def _one_of(*options):
 
 AIMS = ("reach", "gain")
 RESPONDERS = ("active", "likely")
+JOBS = "-1 (every core) or a whole number >= 1"
 
-PLAN = {
-    "target": _real(lambda v: 0 < v <= 1, "a fraction in (0, 1]"),
-    "k": _whole(1),
-    "draws": _whole(2),
-    "max_needed": _whole(1),
-    "budget": _whole(0),
-    "per_user": _whole(1),
-    "per_item": _whole(1),
-    "pool_min_ratings": _whole(0),
-    "seed": _whole(0),
-    "aim": _one_of(*AIMS),
-    "responders": _one_of(*RESPONDERS),
-    "responder_threshold": _real(lambda v: True, "a number"),
+
+def _text(words="text"):
+    return (lambda v: isinstance(v, str)), words
+
+
+def _penalty():
+    # a penalty is 'auto' (chosen on held-out ratings) or a number > 0
+    ok = _real(lambda v: v > 0, "")[0]
+    return (lambda v: v == "auto" if isinstance(v, str) else ok(v)), "a number > 0 or 'auto'"
+
+
+def _jobs():
+    return (lambda v: isinstance(v, numbers.Integral) and not isinstance(v, bool) and (v >= 1 or v == -1)), JOBS
+
+
+def _scale():
+    ok = _real(lambda v: True, "")[0]
+    return (lambda v: isinstance(v, list) and len(v) == 2 and all(map(ok, v)) and v[0] < v[1],
+            "[low, high] with low < high")
+
+
+@dataclass(frozen=True)
+class Setting:
+    """One setting: its default, its rule (a test and the words for what it allows), its help.
+
+    ``in_file`` is False for settings that only a call or a flag gives (a budget, say).
+    """
+
+    default: object
+    rule: tuple
+    help: str
+    in_file: bool = True
+
+    @property
+    def allowed(self) -> str:
+        return self.rule[1]
+
+    def ok(self, value) -> bool:
+        return bool(self.rule[0](value))
+
+
+S = Setting
+# Every setting, by the section of the settings file it lives in.  The estimator's defaults,
+# the settings file's defaults (configs/default.toml is rendered from this), the checks of the
+# library, the TOML and the flags, and the flags' help all read this table.
+SETTINGS = {
+    "ratings": {
+        "user": S("user", _text(), "column of user ids (read as text)"),
+        "item": S("item", _text(), "column of item ids (read as text)"),
+        "rating": S("rating", _text(), "column of ratings (numbers)"),
+        "timestamp": S("", _text(), 'optional column of rating times; "" for none'),
+        "scale": S([1.0, 5.0], _scale(), "lowest and highest valid rating"),
+        "duplicates": S("error", _one_of("error", "last"),
+                        'a repeated (user, item): "error", or "last" to keep the last'),
+        "delimiter": S(",", _text(), "CSV field separator"),
+    },
+    "attributes": {
+        "id": S("item", _text(), "column of item ids in the attribute table"),
+        "tag_separator": S("|", _text(), "separator of tags inside one cell"),
+        "delimiter": S(",", _text(), "CSV field separator"),
+    },
+    "features": {
+        "text_max_features": S(2000, _whole(1), "largest TF-IDF vocabulary per text column"),
+        "text_min_df": S(2, _whole(1), "a word must appear in this many items"),
+        "text_ngrams": S(1, _whole(1), "2 adds word pairs"),
+    },
+    "model": {
+        "rank": S(16, _whole(1), "most dimensions of user and item vectors (the fitted rank is at most this)"),
+        "rank_choice": S("fixed", _one_of("fixed", "held-out"),
+                         '"fixed": exactly rank; "held-out" (opt-in): grow the rank while held-out ratings '
+                         "say it helps"),
+        "lam_user": S("auto", _penalty(), 'regularisation of user blocks; "auto" chooses it on held-out ratings'),
+        "lam_item": S("auto", _penalty(), "regularisation of item blocks around their projection (start value if learned)"),
+        "lam_map": S("auto", _penalty(), "regularisation of the attribute map; a number fixes a penalty"),
+        "epochs": S(25, _whole(1), "most alternating epochs"),
+        "tol": S(1e-5, _real(lambda v: v >= 0, "a number >= 0"),
+                 "stop when the objective changes by less than this fraction"),
+        "seed": S(0, _whole(0), "seed of the start values and the holdout draw"),
+        "prior": S("learned", _one_of("learned", "fixed"),
+                   'item prior covariance: "learned" (cross-fitted EM) or "fixed" (lam_item * I)'),
+        "map_weighting": S("none", _one_of("none", "precision", "bias"),
+                           '"precision": items weigh on the map by n / (n + weight_half) of their n ratings;\n'
+                           '"bias": only the bias coordinate\'s prior, by 1 + n / weight_half (see README)'),
+        "weight_half": S(20.0, _real(lambda v: v > 0, "a number > 0"),
+                         '"precision": the count at which an item weighs half; "bias": the count adding one'),
+        "launch_offset": S("learned", _one_of("learned", "none"),
+                           '"learned": new items\' bias moves by how far projections fell short on the\n'
+                           'ratings items then got (out of sample, rating-weighted); "none": no offset'),
+        "holdout": S(0.0, _real(lambda v: 0 <= v < 1, "a fraction in [0, 1)"),
+                     "fraction of ratings kept aside to report validation RMSE"),
+        "biases": S(True, ((lambda v: isinstance(v, bool)), "true or false"), "fit user and item biases"),
+        "n_jobs": S(-1, _jobs(), "threads for the block solves; -1: every core"),
+    },
+    "score": {
+        "liked": S(4.0, _real(lambda v: True, "a number"),
+                   'a user "likes" an item when the expected rating is at least this'),
+        "audience": S(10, _whole(0), "users listed per new item"),
+        "neighbours": S(5, _whole(0), "nearest existing items listed per new item"),
+        "chunk": S(2000, _whole(1), "items scored at a time (bounds memory)"),
+    },
+    "plan": {
+        "target": S(0.8, _real(lambda v: 0 < v <= 1, "a fraction in (0, 1]"),
+                    "expected neighbour-list overlap an item must reach"),
+        "k": S(10, _whole(1), "length of the neighbour list"),
+        "draws": S(64, _whole(2), "posterior draws per item"),
+        "max_needed": S(200, _whole(1), '"more than" this many ratings is reported as such'),
+        "responders": S("active", _one_of(*RESPONDERS),
+                        'whose answers "ratings needed" assumes: "active" users, or "likely" likers'),
+        "responder_threshold": S(0.0, _real(lambda v: True, "a number"),
+                                 'with "likely": expected rating above this (0 = the liked level)'),
+        "pool_min_ratings": S(20, _whole(0), "items with this many ratings are the candidates of neighbour lists"),
+        "aim": S("reach", _one_of(*AIMS),
+                 'budget split: "reach" (most items to target) or "gain" (most total stability)'),
+        "seed": S(0, _whole(0), "seed of the posterior draws"),
+        "budget": S(None, _whole(0), "ratings to collect in all", in_file=False),
+        "per_user": S(None, _whole(1), "most asks per user", in_file=False),
+        "per_item": S(None, _whole(1), "most ratings planned per item", in_file=False),
+    },
+    "engine": {
+        "kind": S("local", _one_of("local", "dask"),
+                  'where training, planning and scoring run: "local" (this process) or "dask"'),
+        "address": S("", _text("a scheduler address such as 'tcp://10.0.0.5:8786', or '' to start a local cluster"),
+                     'with "dask": the scheduler, e.g. "tcp://10.0.0.5:8786"; "" starts a local cluster'),
+        "partitions": S(8, _whole(1), 'with "dask": blocks per side of the rating matrix'),
+        "workers": S(2, _whole(1), 'with "dask" and no address: worker processes of the local cluster'),
+        "shared_dir": S("", _text("a folder path, or ''"),
+                        'with "dask": a folder every worker can read (partitioned ratings go there\n'
+                        'during a fit); "" is the temporary folder, right for a cluster on this machine'),
+    },
 }
+del S
+
+# the rules by themselves, for the checks below
+PLAN = {name: s.rule for name, s in SETTINGS["plan"].items()}
+SCORE = {name: s.rule for name, s in SETTINGS["score"].items()}
+# the estimator's settings: the model's, the text encoding's and the tag separator
+ESTIMATOR = {**SETTINGS["model"], **SETTINGS["features"], "tag_separator": SETTINGS["attributes"]["tag_separator"]}
 
 
-SCORE = {
-    "liked": _real(lambda v: True, "a number"),
-    "audience": _whole(0),
-    "neighbours": _whole(0),
-    "chunk": _whole(1),
-}
+def defaults(section: str) -> dict:
+    """The defaults of one section of the settings file."""
+    return {name: s.default for name, s in SETTINGS[section].items() if s.in_file}
 
 
 # the checks of a model on held-out ratings (evaluate, calibrate, tune)
@@ -83,8 +205,6 @@ def usable_cores() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-JOBS = "-1 (every core) or a whole number >= 1"
-
 
 def threads(n_jobs) -> int:
     """The number of threads ``n_jobs`` asks for: ``-1`` (the default) is every usable core.
@@ -98,7 +218,7 @@ def threads(n_jobs) -> int:
     ...
     hybrid.common.errors.InputError: n_jobs must be -1 (every core) or a whole number >= 1, found 0
     """
-    if isinstance(n_jobs, numbers.Integral) and not isinstance(n_jobs, bool) and (n_jobs >= 1 or n_jobs == -1):
+    if _jobs()[0](n_jobs):
         return usable_cores() if n_jobs == -1 else int(n_jobs)
     raise InputError(f"n_jobs must be {JOBS}, found {n_jobs!r}")
 
@@ -108,6 +228,13 @@ def _check(rules, values) -> None:
         ok, expected = rules[name]
         if value is not None and not ok(value):
             raise InputError(f"{name} must be {expected}, found {value!r}")
+
+
+def check_estimator(values: dict) -> None:
+    """The estimator's settings (:class:`hybrid.HybridFactorModel`), each against its rule."""
+    _check({name: s.rule for name, s in ESTIMATOR.items()}, {k: v for k, v in values.items() if k in ESTIMATOR})
+    if values.get("map_weighting") == "bias" and not values.get("biases", True):
+        raise InputError("map_weighting 'bias' needs biases = true")
 
 
 def check_plan(**values) -> None:

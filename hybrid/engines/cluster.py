@@ -75,18 +75,19 @@ def engine_client(settings: dict):
 
 
 @contextlib.contextmanager
-def training_data(model):
-    """A fitting model's ratings, here or partitioned on a Dask cluster for the fit,
-    as its ``engine`` says (``mu`` always from these ratings, not an earlier fit)."""
+def training_data(model, engine):
+    """A fitting model's ratings, here or partitioned on a Dask cluster for the fit, as
+    ``engine`` (an :class:`~hybrid.engines.engine.Engine`) says (``mu`` always from these
+    ratings, not an earlier fit)."""
     from hybrid.core.steps import RatingData
     u, i, r = model.ratings_
     n_users, n_items = len(model.user_ids_), len(model.item_ids_)
-    if model.engine == "local":
+    if engine.kind == "local":
         yield RatingData.from_codes(u, i, r, n_users, n_items)
         return
-    with connect(model.address) as client:
-        data = ClusterRatingData.from_codes(client, u, i, r, n_users, n_items, partitions=model.partitions,
-                                            shared_dir=model.shared_dir, A=model.attributes_)
+    with connect(engine.address) as client:
+        data = ClusterRatingData.from_codes(client, u, i, r, n_users, n_items, partitions=engine.partitions,
+                                            shared_dir=engine.shared_dir, A=model.attributes_)
         try:
             yield data
         finally:

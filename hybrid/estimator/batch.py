@@ -14,13 +14,15 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from hybrid.common.limits import check_score
+from hybrid.common.limits import check_score, defaults
 from hybrid.core.neighbours import nearest
 from hybrid.io.outputs import atomic_path, output_format
 
+_S = defaults("score")   # the defaults, from the one table
 
-def score_items(model, attributes: pd.DataFrame, *, liked: float = 4.0, audience: int = 10,
-                neighbours: int = 5, chunk: int = 2000, client=None, window: int = 4):
+
+def score_items(model, attributes: pd.DataFrame, *, liked: float = _S["liked"], audience: int = _S["audience"],
+                neighbours: int = _S["neighbours"], chunk: int = _S["chunk"], client=None, window: int = 4):
     """Yield one DataFrame per chunk of items, one row per item.
 
     With a Dask ``client`` the chunks are scored on its workers (the model is

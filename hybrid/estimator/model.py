@@ -9,8 +9,7 @@ import pandas as pd
 from sklearn.base import BaseEstimator
 from sklearn.exceptions import ConvergenceWarning, NotFittedError
 
-from hybrid.common.errors import InputError
-from hybrid.common.limits import threads
+from hybrid.common.limits import ESTIMATOR, check_estimator, threads
 from hybrid.core.launch import launch_offset
 from hybrid.core.penalties import NAMES as PENALTIES
 from hybrid.core.penalties import START, choose_penalties
@@ -18,6 +17,7 @@ from hybrid.core.ranksearch import search_rank
 from hybrid.core.steps import Factors, RatingData, objective
 from hybrid.core.train import fit_factors
 from hybrid.engines.cluster import training_data
+from hybrid.engines.engine import LOCAL, Engine
 from hybrid.estimator.features import AttributeEncoder
 from hybrid.estimator.persist import load_model, save_model
 from hybrid.estimator.predictions import Scores
@@ -32,6 +32,7 @@ from hybrid.io.tables import (
 FITTED = ("features_", "user_ids_", "item_ids_", "item_table_", "attributes_", "ratings_", "factors_", "mu_",
           "sigma2_", "sigma2_new_", "prior_weight_", "lam_user_", "lam_item_", "lam_map_", "penalty_path_",
           "rank_", "rank_path_", "launched_", "launch_offset_", "metrics_", "extras_", "settings_")
+_D = {name: setting.default for name, setting in ESTIMATOR.items()}   # the defaults, from the one table
 _EMPTY = {"item_table_": lambda: None, "extras_": dict, "settings_": lambda: None}
 
 
@@ -106,19 +107,46 @@ class HybridFactorModel(Scores, BaseEstimator):
         does not depend on it.
     text_max_features, text_min_df, text_ngrams, tag_separator
         Attribute encoding, see :class:`hybrid.estimator.features.AttributeEncoder`.
-    engine : {'local', 'dask'}
-        Where the training's half-steps run: this process, or a Dask cluster
-        (:mod:`hybrid.engines.cluster`; needs the ``dask`` extra).  The fitted model is
-        the same either way.
-    address : str, optional
-        With ``'dask'``: the scheduler (``tcp://host:8786``); ``None`` starts a
-        local cluster of two worker processes for the fit.
-    partitions : int
-        With ``'dask'``: blocks per side of the rating matrix.
-    shared_dir : str, optional
-        With ``'dask'``: a folder every worker can read, where the partitioned
-        ratings are written for the fit (and removed after); ``None`` uses the
-        temporary folder, which suits a cluster on this machine only.
+
+    Where the fit runs (this process or a Dask cluster) is not a setting: it is ``fit``'s
+    ``engine`` argument, and the fitted model is the same either way.  Every setting's default
+    and allowed values come from :data:`hybrid.common.limits.SETTINGS`.
+
+    The fit minimises (``z_i = [b_i, x_i]``, ``w_u = [b_u, theta_u]``)::
+
+        sum_(i,u) (r_iu - mu - b_u - b_i - theta_u . x_i)^2 + lam_user sum_u |w_u|^2
+          + sum_i c_i (z_i - W^T a_i)^T P (z_i - W^T a_i) + lam_map |W|^2
+
+    over users, items and the attribute map ``W`` by exact alternating block solves
+    (:mod:`hybrid.core.train`), with ``P = lam_item I`` and ``c_i`` the map weighting.
+
+    Attributes
+    ----------
+    user_ids_, item_ids_ : ndarray of str
+        The users and items the model knows, in the order of its arrays.
+    item_blocks_, user_blocks_ : ndarray
+        Rows ``[b_i, x_i]`` and ``[b_u, theta_u]`` (no bias column without biases).
+    map_ : ndarray
+        The attribute map ``W`` (features x block).
+    mu_, sigma2_, sigma2_new_ : float
+        The global mean; the noise variance of the fit, and of a rating its raters were not
+        fitted to.
+    lam_user_, lam_item_, lam_map_ : float
+        The penalties used (chosen ones with ``'auto'``); ``penalty_path_`` the search's steps.
+    rank_ : int
+        The fitted rank; ``rank_path_`` the rank search's levels.
+    prior_covariance_, prior_precision_ : ndarray
+        The item prior around the attribute projection.
+    launch_offset_ : float
+        Added to the bias of items that had no ratings at the fit; ``launched_`` marks them.
+    item_counts_, user_counts_ : ndarray of int
+        Ratings per item and per user; ``rating_range_`` the lowest and highest rating.
+    history_ : list of dict
+        One record per epoch (objective, RMSEs, seconds); ``n_iter_`` the epochs run.
+    metrics_ : dict
+        The fit's figures (sizes, RMSEs, penalties, seconds by stage, the engine it ran on).
+    features_ : AttributeEncoder
+        The fitted attribute encoding; ``attributes_`` the items' encoded rows.
 
     Examples
     --------
@@ -129,12 +157,12 @@ class HybridFactorModel(Scores, BaseEstimator):
     (1,)
     """
 
-    def __init__(self, *, rank=16, rank_choice="fixed", lam_user="auto", lam_item="auto", lam_map="auto", epochs=25,
-                 tol=1e-5, seed=0, schema=None, prior="learned", map_weighting="none", weight_half=20.0,
-                 launch_offset="learned", holdout=0.0,
-                 biases=True, n_jobs=-1, text_max_features=2000, text_min_df=2, text_ngrams=1,
-                 tag_separator="|", engine="local", address=None, partitions=8,
-                 shared_dir=None):
+    def __init__(self, *, rank=_D["rank"], rank_choice=_D["rank_choice"], lam_user=_D["lam_user"],
+                 lam_item=_D["lam_item"], lam_map=_D["lam_map"], epochs=_D["epochs"], tol=_D["tol"], seed=_D["seed"],
+                 schema=None, prior=_D["prior"], map_weighting=_D["map_weighting"], weight_half=_D["weight_half"],
+                 launch_offset=_D["launch_offset"], holdout=_D["holdout"], biases=_D["biases"], n_jobs=_D["n_jobs"],
+                 text_max_features=_D["text_max_features"], text_min_df=_D["text_min_df"],
+                 text_ngrams=_D["text_ngrams"], tag_separator=_D["tag_separator"]):
         self.rank = rank
         self.rank_choice = rank_choice
         self.lam_user = lam_user
@@ -155,40 +183,12 @@ class HybridFactorModel(Scores, BaseEstimator):
         self.text_min_df = text_min_df
         self.text_ngrams = text_ngrams
         self.tag_separator = tag_separator
-        self.engine = engine
-        self.address = address
-        self.partitions = partitions
-        self.shared_dir = shared_dir
 
     def _check_params(self):
-        for name in ("lam_user", "lam_item", "lam_map"):
-            value = getattr(self, name)
-            if isinstance(value, str) and value == "auto":
-                continue
-            if not (isinstance(value, (int, float, np.floating)) and value > 0):
-                raise InputError(f"{name} must be a number > 0 or 'auto', found {value!r}")
-        if not (isinstance(self.rank, (int, np.integer)) and self.rank >= 1):
-            raise InputError(f"rank must be a whole number >= 1, found {self.rank!r}")
-        if self.rank_choice not in ("held-out", "fixed"):
-            raise InputError(f"rank_choice must be 'held-out' or 'fixed', found {self.rank_choice!r}")
-        if self.prior not in ("learned", "fixed"):
-            raise InputError(f"prior must be 'learned' or 'fixed', found {self.prior!r}")
-        if self.map_weighting not in ("none", "precision", "bias"):
-            raise InputError(f"map_weighting must be 'none', 'precision' or 'bias', found {self.map_weighting!r}")
-        if self.map_weighting == "bias" and not self.biases:
-            raise InputError("map_weighting 'bias' needs biases = true")
-        if self.launch_offset not in ("learned", "none"):
-            raise InputError(f"launch_offset must be 'learned' or 'none', found {self.launch_offset!r}")
-        if not 0 <= self.holdout < 1:
-            raise InputError(f"holdout must be in [0, 1), found {self.holdout!r}")
-        if self.engine not in ("local", "dask"):
-            raise InputError(f"engine must be 'local' or 'dask', found {self.engine!r}")
-        threads(self.n_jobs)
-        if not (isinstance(self.partitions, (int, np.integer)) and self.partitions >= 1):
-            raise InputError(f"partitions must be a whole number >= 1, found {self.partitions!r}")
+        check_estimator(self.get_params())
 
-    # ----------------------------------------------------------------- fit
-    def fit(self, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None, on_epoch=None):
+    def fit(self, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None, on_epoch=None, *,
+            engine: Engine | None = None):
         """Fit factors and map jointly.
 
         Parameters
@@ -200,12 +200,16 @@ class HybridFactorModel(Scores, BaseEstimator):
             needs a row; rows of unrated items are fitted as cold items.
         on_epoch : callable, optional
             Called with each epoch's record (for progress display).
+        engine : Engine, optional
+            Where the half-steps run (:class:`hybrid.engines.engine.Engine`); this process if
+            not given.  Recorded in ``metrics_["engine"]``; the fitted model does not depend on it.
 
         Returns
         -------
         self
         """
         self._check_params()
+        engine = LOCAL if engine is None else engine
         t0 = time.perf_counter()
         ratings = validate_ratings(ratings, {"user": "user", "item": "item", "rating": "rating"},
                                    scale=(-np.inf, np.inf), source="ratings")
@@ -237,7 +241,7 @@ class HybridFactorModel(Scores, BaseEstimator):
         stages["rank search"], mark = time.perf_counter() - mark, time.perf_counter()
         self.set_fitted(**self._choose_penalties())
         stages["penalty search"], mark = time.perf_counter() - mark, time.perf_counter()
-        with training_data(self) as data:
+        with training_data(self, engine) as data:
             validate = None
             if valid.size:
                 uv, iv, rv = u[valid], i[valid], r[valid]
@@ -274,7 +278,7 @@ class HybridFactorModel(Scores, BaseEstimator):
             "lam_item": self.lam_item_, "lam_map": self.lam_map_,
             "penalty_path": [[p, e] for p, e in self.penalty_path_],
             "variance_scales": list(F.scales), "launch_offset": self.launch_offset_,
-            "seconds": time.perf_counter() - t0, "stage_seconds": stages})
+            "seconds": time.perf_counter() - t0, "stage_seconds": stages, "engine": engine.provenance()})
         return self
 
     def _warn_if_unconverged(self, history):

@@ -11,6 +11,8 @@ from hybrid.core.steps import Factors
 from hybrid.estimator.features import AttributeEncoder
 from hybrid.io.store import bad_file, read_manifest, write_model_file
 
+_WHERE_IT_RAN = ("engine", "address", "partitions", "shared_dir")
+
 
 def model_arrays(model) -> dict[str, np.ndarray]:
     """The arrays a model file holds, by name."""
@@ -74,7 +76,9 @@ def load_model(path, cls):
 
 def model_from_file(manifest: dict, a: dict, cls):
     """The model (an instance of ``cls``) from a checked manifest and its arrays."""
-    params = manifest["params"]
+    # where a model was fitted was a setting in files before the engine became fit's argument:
+    # it is provenance, and loading never depends on it
+    params = {k: v for k, v in manifest["params"].items() if k not in _WHERE_IT_RAN}
     unknown = sorted(set(params) - set(cls().get_params()))
     if unknown:
         raise KeyError(f"params.{unknown[0]}")

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from hybrid.common.errors import InputError, did_you_mean_id
-from hybrid.common.limits import check_plan, threads
+from hybrid.common.limits import SETTINGS, check_plan, defaults, threads
 from hybrid.core.posterior import (
     covariances,
     draw_factor,
@@ -257,12 +257,13 @@ def priority_weights(model, column):
     raise InputError(f"priority column '{column}': expected numbers or dates, found {raw.iloc[0]!r}")
 
 
-LIKED = 4.0   # the responder threshold when none is given (a 1 to 5 scale's "liked"; the app passes its setting)
+LIKED = SETTINGS["score"]["liked"].default   # the responder threshold when none is given (the app passes its own)
+_P = defaults("plan")   # plan()'s defaults, from the one table
 
 
-def plan(model, target=0.8, k=10, budget=None, per_user=None, priority=None, seed=0, *,
-         draws=64, max_needed=200, aim="reach", per_item=None, responders="active",
-         responder_threshold=None, pool_min_ratings=20, items=None, client=None) -> Plan:
+def plan(model, target=_P["target"], k=_P["k"], budget=None, per_user=None, priority=None, seed=_P["seed"], *,
+         draws=_P["draws"], max_needed=_P["max_needed"], aim=_P["aim"], per_item=None, responders=_P["responders"],
+         responder_threshold=None, pool_min_ratings=_P["pool_min_ratings"], items=None, client=None) -> Plan:
     """Assess every item and, given a budget, plan a sampling campaign.
 
     Parameters
