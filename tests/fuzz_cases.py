@@ -41,7 +41,7 @@ def build(root: Path) -> Files:
     club = tasting_club(n_members=150, n_lots=40, n_new=5, seed=3)
     paths = write_samples(root / "club", club)
     cfg = root / "club" / "small.toml"
-    cfg.write_text(Path(DEMO_CONFIG).read_text().replace("rank = 5", "rank = 3").replace("epochs = 30", "epochs = 4"))
+    cfg.write_text(Path(DEMO_CONFIG).read_text().replace("rank = 5", "rank = 3").replace("epochs = 60 ", "epochs = 4 "))
     F = Files(root, {k: v for k, v in paths.items()})
     F.f["config"] = cfg
     run = CliRunner().invoke

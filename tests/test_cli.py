@@ -23,7 +23,7 @@ def files(tmp_path_factory):
     club = tasting_club(n_members=400, n_lots=80, n_new=6, seed=2)
     paths = write_samples(folder, club)
     cfg = folder / "coffee.toml"
-    cfg.write_text(open("configs/coffee.toml").read().replace("epochs = 30", "epochs = 6"))
+    cfg.write_text(open("configs/coffee.toml").read().replace("epochs = 60 ", "epochs = 6 "))
     paths["config"] = cfg
     model = folder / "club.hybrid"
     result = run("train", paths["ratings"], paths["lots"], "--config", cfg, "--out", model, "--format", "json")

@@ -112,12 +112,12 @@ import json, sys
 import numpy as np
 sys.path.insert(0, {bench!r})
 from bench_train import synthetic
-from hybrid.core.steps import RatingData
+from hybrid.core.steps import Problem, RatingData
 from hybrid.core.train import fit_factors
 def run(n):
     u, i, r, A = synthetic(20000, 5000, n)
     data = RatingData.from_codes(u, i, r, 20000, 5000)
-    fit_factors(data, A, rank=16, lam_user=5.0, lam_item=5.0, lam_map=1.0, epochs=2, tol=0.0, seed=0)
+    fit_factors(Problem.of(data, A, lam_user=5.0, lam_map=1.0), rank=16, lam_item=5.0, epochs=2, tol=0.0, seed=0)
 run(5000)  # warm: imports and buffers, as on the workers below
 sys.path.insert(0, {tests!r})
 from test_cluster import _reset_peak, _peak_rss
@@ -155,12 +155,14 @@ def test_worker_memory_is_a_fraction_of_one_process():
     sys.path.insert(0, bench)
     from bench_train import synthetic
 
+    from hybrid.core.steps import Problem
     from hybrid.core.train import fit_factors
 
     def run(client, n):
         u, i, r, A = synthetic(20000, 5000, n)
         data = ClusterRatingData.from_codes(client, u, i, r, 20000, 5000, partitions=8, A=A)
-        fit_factors(data, A, rank=16, lam_user=5.0, lam_item=5.0, lam_map=1.0, epochs=2, tol=0.0, seed=0)
+        fit_factors(Problem.of(data, A, lam_user=5.0, lam_map=1.0), rank=16, lam_item=5.0, epochs=2, tol=0.0,
+                    seed=0)
         data.close()
 
     with _cluster() as c, distributed.Client(c) as client:
@@ -186,7 +188,7 @@ def test_commands_run_on_the_cluster_with_the_same_outputs(cluster, tmp_path):
     run = lambda *a: runner.invoke(app, [str(x) for x in a])
     paths = write_samples(tmp_path, tasting_club(n_members=300, n_lots=60, n_new=5, seed=4))
     cfg = tmp_path / "coffee.toml"
-    cfg.write_text(open("configs/coffee.toml").read().replace("epochs = 30", "epochs = 4"))
+    cfg.write_text(open("configs/coffee.toml").read().replace("epochs = 60 ", "epochs = 4 "))
     for where, flags in (("here", []), ("there", ["--engine", "dask", "--partitions", "3"])):
         r = run("train", paths["ratings"], paths["lots"], "--config", cfg, "--out", tmp_path / f"{where}.hybrid",
                 "--quiet", *flags)

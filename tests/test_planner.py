@@ -8,13 +8,14 @@ from sklearn.linear_model import Ridge
 from hybrid import HybridFactorModel
 from hybrid.common.errors import InputError
 from hybrid.core.posterior import covariances, item_grams, stability
+from hybrid.planning.assess import FIRST_DRAWS, Assessor, settle
 from hybrid.planning.campaign import (
     allocate_gain,
     allocate_reach,
     choose_askees,
     exact_allocation,
 )
-from hybrid.planning.planner import FIRST_DRAWS, Assessor, plan, settle
+from hybrid.planning.planner import plan
 
 
 @pytest.fixture(scope="module")

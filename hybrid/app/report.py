@@ -15,7 +15,7 @@ import pandas as pd
 from matplotlib.figure import Figure
 
 from hybrid.common.errors import InputError, did_you_mean
-from hybrid.planning.planner import STATUS, Assessor
+from hybrid.planning.assess import STATUS, Assessor
 
 CAUTIONS = ("Ratings are personal data, and a sampling campaign contacts people: ask only customers "
             "who agreed to be asked, honour opt-outs, and follow the data-protection law that applies "

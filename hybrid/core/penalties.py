@@ -34,9 +34,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from hybrid.core.mapsolve import map_solver
 from hybrid.core.ranksearch import held_out, held_rmse
-from hybrid.core.steps import Factors
+from hybrid.core.steps import Factors, Problem, start_factors
 from hybrid.core.train import run_epochs
 
 NAMES = ("lam_user", "lam_item", "lam_map")
@@ -44,11 +43,10 @@ START = {"lam_user": 8.0, "lam_item": 8.0, "lam_map": 8.0}
 LOWEST, HIGHEST = 2.0 ** -4, 2.0 ** 12
 
 
-def _trial(data, F, A, values, weight, rated, solver, epochs, n_jobs):
+def _trial(problem: Problem, F: Factors, values, epochs, n_jobs):
     """A copy of ``F`` fitted ``epochs`` more epochs under penalties ``values``."""
     G = Factors(F.user.copy(), F.item.copy(), F.W.copy(), values["lam_item"] * np.eye(F.item.shape[1]), F.biases)
-    run_epochs(data, G, A, values["lam_user"], values["lam_map"], weight, rated,
-            solver.with_penalty(values["lam_map"]), epochs, 0.0, n_jobs, None, None)
+    run_epochs(problem.with_penalties(values["lam_user"], values["lam_map"]), G, epochs, 0.0, n_jobs)
     return G
 
 
@@ -126,15 +124,9 @@ def choose_penalties(codes, shape, A, *, rank, given, biases, seed, fraction=0.1
     values = {k: START[k] if given[k] == "auto" else float(given[k]) for k in NAMES}
     free = [k for k in NAMES if given[k] == "auto"]
     d = rank + 1 if biases else rank
-    rng = np.random.default_rng([int(seed), 9])
-    item = rng.normal(0.0, 0.1, (shape[1], d))
-    if biases:
-        item[:, 0] = 0.0
-    F = Factors(np.zeros((shape[0], d)), item, np.zeros((A.shape[1], d)), np.eye(d), biases)
-    weight = np.ones(shape[1])
-    rated = data.item_counts() > 0
-    solver = map_solver(A[rated], weight[rated], values["lam_map"])
-    F = _trial(data, F, A, values, weight, rated, solver, start_epochs, n_jobs)
+    F = start_factors(shape[0], shape[1], A.shape[1], d, np.random.default_rng([int(seed), 9]), biases)
+    problem = Problem.of(data, A, lam_user=values["lam_user"], lam_map=values["lam_map"])
+    F = _trial(problem, F, values, start_epochs, n_jobs)
     best = held_rmse(F, uh, ih, y)
     path = [(dict(values), best)]
     for factor in (4.0, 2.0):       # coarse steps first, then halve them
@@ -146,7 +138,7 @@ def choose_penalties(codes, shape, A, *, rank, given, biases, seed, fraction=0.1
                     trial = {**values, name: float(np.clip(values[name] * step, LOWEST, HIGHEST))}
                     if trial[name] == values[name] or any(p == trial for p, _ in path):
                         continue
-                    G = _trial(data, F, A, trial, weight, rated, solver, epochs, n_jobs)
+                    G = _trial(problem, F, trial, epochs, n_jobs)
                     err = held_rmse(G, uh, ih, y)
                     path.append((dict(trial), err))
                     if err < best:

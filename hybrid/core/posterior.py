@@ -42,6 +42,27 @@ def item_grams(model, rows=None):
     return row_grams(R.indptr, R.indices, R.data, design(ut, ub), offset)[0]
 
 
+def posterior_covariance(grams, P, sigma2):
+    """``sigma2 (G + P)^-1``: the covariance of items' blocks given their raters' Gram matrices
+    ``G`` (n, d, d) and prior precision ``P`` on the noise's scale (one (d, d), or one per item)."""
+    return sigma2 * np.linalg.inv(grams + P)
+
+
+def gaussian_posterior(grams, rhs, prior_mean, P, sigma2):
+    """Mean and covariance of items' blocks in Bayesian linear regression (Bishop 2006, 3.3).
+
+    ``mean = (G + P)^-1 (b + P m)``, ``cov = sigma2 (G + P)^-1`` for each item's ``G = B^T B``,
+    ``b = B^T y`` and prior mean ``m``; ``P`` is one (d, d) precision or one per item.
+
+    >>> z, cov = gaussian_posterior(np.array([[[1.0]]]), np.array([[2.0]]), np.array([[0.0]]), np.eye(1), 0.5)
+    >>> z.tolist(), cov.tolist()
+    ([[1.0]], [[[0.25]]])
+    """
+    pm = prior_mean @ P if P.ndim == 2 else np.einsum("nij,nj->ni", P, prior_mean)
+    z = np.linalg.solve(grams + P, (rhs + pm)[..., None])[..., 0]
+    return z, posterior_covariance(grams, P, sigma2)
+
+
 def covariances(model, grams, weight, extra=None):
     """Posterior covariances of a block of items.
 

@@ -13,11 +13,16 @@ spread (the empirical-Bayes estimate of Morris, JASA 1983).
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
+from hybrid.common.limits import SETTINGS
+from hybrid.common.seeds import stream
 from hybrid.core.blocks import design, row_grams
-from hybrid.core.mapsolve import block_diagonal, map_solver
-from hybrid.core.steps import Factors, item_step, map_step, user_step
+from hybrid.core.mapsolve import block_diagonal
+from hybrid.core.posterior import gaussian_posterior
+from hybrid.core.steps import Factors, Problem
 from hybrid.core.variance_scales import variance_scales
 
 
@@ -59,7 +64,7 @@ def held_out_set(counts, seed, fraction=0.5, most=400, min_ratings=60, least=100
     ``least`` most-rated), held out to measure the prior."""
     members = np.flatnonzero(well_rated(counts, min_ratings, least))
     n = int(min(most, max(1, round(fraction * len(members)))))
-    return np.sort(np.random.default_rng(seed + 17).choice(members, n, replace=False))
+    return np.sort(stream(seed, "prior items").choice(members, n, replace=False))
 
 
 def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-4, weight=None):
@@ -79,10 +84,9 @@ def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-4, wei
     s = np.ones((n, d)) if weight is None or np.ndim(weight) == 1 else np.sqrt(weight)
     for _ in range(rounds):
         P = s[:, :, None] * (sigma2 * np.linalg.inv(Psi))[None] * s[:, None, :]
-        prec = grams + P
-        z = np.linalg.solve(prec, (rhs + np.einsum("nij,nj->ni", P, prior_mean))[..., None])[..., 0]
+        z, cov = gaussian_posterior(grams, rhs, prior_mean, P, sigma2)
         D = (z - prior_mean) * s
-        spread = np.einsum("ni,nij,nj->ij", s, sigma2 * np.linalg.inv(prec), s)
+        spread = np.einsum("ni,nij,nj->ij", s, cov, s)
         new = (D.T @ D + spread) / n
         new = 0.5 * (new + new.T) + 1e-9 * np.trace(new) / d * np.eye(d)
         if weight is not None:
@@ -96,33 +100,46 @@ def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-4, wei
 
 
 ROUNDS = 10
+# the check reads neighbour lists among items as the planner forms them, by its default pool rule
+POOL_MIN_RATINGS = SETTINGS["plan"]["pool_min_ratings"].default
 
 
-def _fold(data, F, A, weight, held, lam_user, lam_map, rounds, n_jobs):
+@dataclass
+class HeldOutFold:
+    """One fold of well-rated items held out: the users and map re-fitted without them, and
+    what the variance-scale check (:mod:`hybrid.core.variance_scales`) reads of them."""
+
+    G: Factors             # users, items and map fitted without the held items' ratings
+    problem: Problem       # the fold's problem (the ratings without the held items)
+    held: np.ndarray       # the held items' indices
+    R: object              # their ratings (CSR rows, r - mu)
+    Fe: np.ndarray         # the users' design rows [1, theta_u] fitted without them
+    offset: np.ndarray     # the users' biases
+    grams: np.ndarray      # per held item, the Gram matrix and right-hand side of its raters
+    rhs: np.ndarray
+    pool: np.ndarray       # the candidate vectors of neighbour lists
+    m: np.ndarray | None = None   # the held items' out-of-sample projections
+
+
+def _fold(problem: Problem, F: Factors, held, rounds, n_jobs) -> HeldOutFold:
     """Users, items and map re-fitted without the ``held`` items' ratings, and
     the held items' statistics against them."""
-
-    out = data.without(held)
+    out = Problem.of(problem.data.without(held), problem.A, lam_user=problem.lam_user, lam_map=problem.lam_map,
+                     weight=problem.weight)
     G = Factors(F.user.copy(), F.item.copy(), F.W.copy(), F.P.copy(), F.biases)
-    rated = out.item_counts() > 0
-    solver = map_solver(A[rated], weight[rated], lam_map)
     for _ in range(rounds):  # undo the co-adaptation: users and map without the held-out items
-        user_step(out, G, lam_user, n_jobs)
-        item_step(out, G, A, weight, n_jobs)
-        map_step(G, A, rated, solver, out)
+        out.epoch(G, n_jobs)
     ub, ut = G.split(G.user)
-    R = data.item_rows(held)
+    R = problem.data.item_rows(held)
     Fe = design(ut, ub)
     offset = np.zeros(len(ut)) if ub is None else ub
     grams, rhs = row_grams(R.indptr, R.indices, R.data, Fe, offset)
     off = 1 if G.biases else 0
-    pool = np.flatnonzero(out.item_counts() >= 20)
-    return {"G": G, "solver": solver, "rated": rated, "held": held, "R": R, "Fe": Fe,
-            "offset": offset, "grams": grams, "rhs": rhs, "pool": G.item[pool, off:]}
+    pool = np.flatnonzero(out.data.item_counts() >= POOL_MIN_RATINGS)
+    return HeldOutFold(G, out, held, R, Fe, offset, grams, rhs, G.item[pool, off:])
 
 
-def learn_prior(data, F, A, weight, sigma2, lam_user, lam_map, seed, n_jobs=1, rounds=ROUNDS,
-                recalibrate=True, folds=2):
+def learn_prior(problem: Problem, F: Factors, sigma2, seed, n_jobs=1, rounds=ROUNDS, recalibrate=True, folds=2):
     """The item prior precision ``P = sigma^2 Psi^-1``, ``Psi`` cross-fitted (module doc).
 
     The well-rated items are split into ``folds``; each fold is held out in
@@ -131,18 +148,17 @@ def learn_prior(data, F, A, weight, sigma2, lam_user, lam_map, seed, n_jobs=1, r
     (kappa_prior, kappa_noise))``: the prior covariance and the variance of a
     new rating, both recalibrated.
     """
-    counts = data.item_counts()
-    held = held_out_set(counts, seed, fraction=1.0, most=400 * folds)
-    parts = [_fold(data, F, A, weight, h, lam_user, lam_map, rounds, n_jobs)
-             for h in np.array_split(held, folds) if len(h)]
+    A, weight = problem.A, problem.weight
+    held = held_out_set(problem.data.item_counts(), seed, fraction=1.0, most=400 * folds)
+    parts = [_fold(problem, F, h, rounds, n_jobs) for h in np.array_split(held, folds) if len(h)]
     for f in parts:
-        W = f["solver"].with_penalty(lam_map).solve(f["G"].item[f["rated"]], f["G"].P)
-        f["m"] = np.asarray(A[f["held"]] @ W)
-    cat = lambda key: np.concatenate([f[key] for f in parts])
+        W = f.problem.solver.with_penalty(problem.lam_map).solve(f.G.item[f.problem.rated], f.G.P)
+        f.m = np.asarray(A[f.held] @ W)
+    cat = lambda key: np.concatenate([getattr(f, key) for f in parts])
     Psi = em_covariance(cat("grams"), cat("rhs"), cat("m"), sigma2, sigma2 * np.linalg.inv(F.P),
                         weight=weight[cat("held")] if np.ndim(weight) == 2 else None)
     scales = (1.0, 1.0)
-    if recalibrate and all(len(f["pool"]) > 40 for f in parts):
+    if recalibrate and all(len(f.pool) > 40 for f in parts):
         scales = variance_scales(parts, Psi, sigma2, 1 if F.biases else 0, seed=seed, n_jobs=n_jobs)
     kp, kn = scales
     return kp * Psi, kn * sigma2, scales

@@ -34,8 +34,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from hybrid.core.mapsolve import map_solver
-from hybrid.core.steps import Factors, RatingData
+from hybrid.core.steps import Factors, Problem, RatingData, start_factors
 from hybrid.core.train import run_epochs
 
 LADDER = (1, 2, 3, 4, 6, 8, 12, 16, 24, 32, 48, 64, 96, 128)
@@ -127,21 +126,16 @@ def search_rank(codes, shape, A, *, most, lam_user, lam_item, lam_map, biases, s
     """
     data, uh, ih, y = held_out(codes, shape, fraction, seed)
     rng = np.random.default_rng([int(seed), 8])
-    weight = np.ones(shape[1])
-    rated = data.item_counts() > 0
-    solver = map_solver(A[rated], weight[rated], lam_map)
+    problem = Problem.of(data, A, lam_user=lam_user, lam_map=lam_map)
     F, best, path, stale = None, None, [], 0
     for rank in ladder(most):
         d = rank + 1 if biases else rank
         if F is None:
-            item = rng.normal(0.0, 0.1, (shape[1], d))
-            if biases:
-                item[:, 0] = 0.0
-            F = Factors(np.zeros((shape[0], d)), item, np.zeros((A.shape[1], d)), lam_item * np.eye(d), biases)
+            F = start_factors(shape[0], shape[1], A.shape[1], d, rng, biases, lam_item * np.eye(d))
         else:
             F = _widen(F, d, rng, A.shape[1])
             F.P = lam_item * np.eye(d)
-        run_epochs(data, F, A, lam_user, lam_map, weight, rated, solver, epochs, 0.0, n_jobs, None, None)
+        run_epochs(problem, F, epochs, 0.0, n_jobs)
         err = held_rmse(F, uh, ih, y)
         path.append((rank, err))
         if best is None or err < best[1] * (1.0 - min_gain):

@@ -6,13 +6,14 @@ The alternating loop that uses them is :mod:`hybrid.core.train`; the learned pri
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
 
 from hybrid.core.blocks import design, leverage_rows, solve_rows, sse_rows
-from hybrid.core.mapsolve import column_parts
+from hybrid.core.mapsolve import column_parts, map_solver
 
 
 @dataclass
@@ -108,6 +109,48 @@ class Factors:
     def split(self, z):
         """(bias, vectors) of a block; bias is ``None`` without biases."""
         return (z[:, 0], z[:, 1:]) if self.biases else (None, z)
+
+
+def start_factors(n_users, n_items, n_features, d, rng, biases=True, P=None) -> Factors:
+    """The trainer's starting point: small random item blocks (zero biases), zero users and
+    map, prior precision ``P`` (the identity if not given)."""
+    item = rng.normal(0.0, 0.1, (n_items, d))
+    if biases:
+        item[:, 0] = 0.0
+    return Factors(np.zeros((n_users, d)), item, np.zeros((n_features, d)), np.eye(d) if P is None else P, biases)
+
+
+@dataclass(frozen=True)
+class Problem:
+    """What the alternating solver minimises: the ratings, the items' attribute rows ``A``,
+    each item's prior weight and the two penalties outside ``Factors.P``.  ``rated`` (items
+    with ratings) and ``solver`` (the map's factorised solve) follow from them; build with
+    :meth:`of`."""
+
+    data: Any
+    A: Any
+    weight: np.ndarray
+    lam_user: float
+    lam_map: float
+    rated: np.ndarray
+    solver: Any
+
+    @classmethod
+    def of(cls, data, A, *, lam_user, lam_map, weight=None) -> "Problem":
+        weight = np.ones(data.shape[1]) if weight is None else np.asarray(weight, float)
+        rated = data.item_counts() > 0
+        return cls(data, A, weight, lam_user, lam_map, rated, map_solver(A[rated], weight[rated], lam_map))
+
+    def with_penalties(self, lam_user, lam_map) -> "Problem":
+        """The same problem under other penalties (the map's factorisation reused)."""
+        return replace(self, lam_user=lam_user, lam_map=lam_map, solver=self.solver.with_penalty(lam_map))
+
+    def epoch(self, F: Factors, n_jobs=1):
+        """One alternating epoch: users, items, then the map; returns (objective, sse)."""
+        user_step(self.data, F, self.lam_user, n_jobs)
+        item_step(self.data, F, self.A, self.weight, n_jobs)
+        map_step(F, self.A, self.rated, self.solver, self.data)
+        return objective(self.data, F, self.A, self.lam_user, self.lam_map, self.weight, sse=F.sse)
 
 
 def _offsets(F: Factors, z):

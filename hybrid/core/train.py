@@ -22,23 +22,23 @@ import time
 import numpy as np
 
 from hybrid.core.blocks import blas_threads
-from hybrid.core.mapsolve import block_diagonal, map_solver
+from hybrid.core.mapsolve import block_diagonal
 from hybrid.core.prior import learn_prior, predictive_sigma2, well_rated
 from hybrid.core.steps import (
     Factors,
-    RatingData,
+    Problem,
     item_step,
     map_step,
     objective,
     precision_floor,
+    start_factors,
     user_step,
 )
 
 
-def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epochs, tol,
-                seed, prior="fixed", weight=None, biases=True, n_jobs=1, validate=None,
-                on_epoch=None, P0=None):
-    """Run the alternating solver.
+def fit_factors(problem: Problem, *, rank, lam_item, epochs, tol, seed, biases=True, prior="fixed", n_jobs=1,
+                validate=None, on_epoch=None):
+    """Run the alternating solver on ``problem`` from a seeded start.
 
     Returns the fitted :class:`Factors`, the residual variance of the fit
     (degrees-of-freedom corrected; the noise of the ratings the model was
@@ -47,44 +47,33 @@ def fit_factors(data: RatingData, A, *, rank, lam_user, lam_item, lam_map, epoch
 
     Parameters
     ----------
-    data : RatingData
-    A : sparse (n_items, p)
-        Attribute design matrix.
+    problem : Problem
+        The ratings, attributes, prior weights and penalties (:class:`hybrid.core.steps.Problem`).
+    rank, lam_item, biases
+        The blocks' size, their starting prior precision ``lam_item * I``, and whether they
+        carry a bias.
     validate : callable, optional
         ``validate(F) -> rmse`` called after each epoch.
     on_epoch : callable, optional
         ``on_epoch(record)`` with the epoch's figures, for progress display.
-    P0 : ndarray, optional
-        Starting prior precision (default ``lam_item * I``).
     """
-    n_users, n_items = data.shape
+    n_users, n_items = problem.data.shape
     d = rank + 1 if biases else rank
-    rng = np.random.default_rng(seed)
-    weight = np.ones(n_items) if weight is None else np.asarray(weight, float)
-    if P0 is not None:
-        P0 = block_diagonal(np.array(P0, float), weight)
-    item = rng.normal(0.0, 0.1, (n_items, d))
-    if biases:
-        item[:, 0] = 0.0
-    F = Factors(user=np.zeros((n_users, d)), item=item, W=np.zeros((A.shape[1], d)),
-                P=lam_item * np.eye(d) if P0 is None else np.array(P0, float), biases=biases)
-    rated = data.item_counts() > 0
-    solver = map_solver(A[rated], weight[rated], lam_map)
+    F = start_factors(n_users, n_items, problem.A.shape[1], d, np.random.default_rng(seed), biases,
+                      lam_item * np.eye(d))
     # with our own threads, BLAS runs on one: its idle threads would spin against ours
     with blas_threads(1 if n_jobs > 1 else None):
-        run_epochs(data, F, A, lam_user, lam_map, weight, rated, solver, epochs, tol, n_jobs, validate, on_epoch)
-    return _finish(data, F, A, lam_user, lam_map, weight, rated, solver, prior, seed, n_jobs)
+        run_epochs(problem, F, epochs, tol, n_jobs, validate, on_epoch)
+    return _finish(problem, F, prior, seed, n_jobs)
 
 
-def run_epochs(data, F, A, lam_user, lam_map, weight, rated, solver, epochs, tol, n_jobs, validate, on_epoch):
+def run_epochs(problem: Problem, F: Factors, epochs, tol, n_jobs=1, validate=None, on_epoch=None):
+    """Alternating epochs on ``F`` (in place) until ``epochs`` or a relative change below ``tol``."""
     previous = np.inf
     for epoch in range(1, epochs + 1):
         t0 = time.perf_counter()
-        user_step(data, F, lam_user, n_jobs)
-        item_step(data, F, A, weight, n_jobs)
-        map_step(F, A, rated, solver, data)
-        total, sse = objective(data, F, A, lam_user, lam_map, weight, sse=F.sse)
-        record = {"epoch": epoch, "objective": total, "train_rmse": float(np.sqrt(sse / data.nnz)),
+        total, sse = problem.epoch(F, n_jobs)
+        record = {"epoch": epoch, "objective": total, "train_rmse": float(np.sqrt(sse / problem.data.nnz)),
                   "valid_rmse": float(validate(F)) if validate else float("nan"),
                   "seconds": time.perf_counter() - t0}
         F.history.append(record)
@@ -95,8 +84,9 @@ def run_epochs(data, F, A, lam_user, lam_map, weight, rated, solver, epochs, tol
         previous = total
 
 
-def _finish(data, F, A, lam_user, lam_map, weight, rated, solver, prior, seed, n_jobs, settle=30):
+def _finish(problem: Problem, F: Factors, prior, seed, n_jobs, settle=30):
     """Degrees of freedom, the noise variances and, with the learned prior, the prior."""
+    data, A, weight, lam_user, lam_map = problem.data, problem.A, problem.weight, problem.lam_user, problem.lam_map
     edf_u = user_step(data, F, lam_user, n_jobs, with_edf=True)
     edf_i = item_step(data, F, A, weight, n_jobs, with_edf=True)
     sse = objective(data, F, A, lam_user, lam_map, weight)[1]
@@ -105,8 +95,7 @@ def _finish(data, F, A, lam_user, lam_map, weight, rated, solver, prior, seed, n
     sigma2_new = predictive_sigma2(data, F, lam_user, fit_sigma2, well_rated(counts), seed=seed)
     if prior == "learned":
         t0 = time.perf_counter()
-        Psi, sigma2_new, F.scales = learn_prior(data, F, A, weight, sigma2_new, lam_user, lam_map, seed,
-                                                n_jobs)
+        Psi, sigma2_new, F.scales = learn_prior(problem, F, sigma2_new, seed, n_jobs)
         F.spread = Psi    # what the planner's uncertainty reads
         # The fit's penalty is the learned precision with no direction weaker than the
         # penalty chosen on held-out ratings: the learned prior knows that biases vary
@@ -118,7 +107,7 @@ def _finish(data, F, A, lam_user, lam_map, weight, rated, solver, prior, seed, n
         for _ in range(settle):  # the map and items settle under it
             W_old = F.W
             item_step(data, F, A, weight, n_jobs)
-            map_step(F, A, rated, solver, data)
+            map_step(F, A, problem.rated, problem.solver, data)
             if np.abs(F.W - W_old).max() <= 1e-4 * max(np.abs(W_old).max(), 1.0):
                 break
         item_step(data, F, A, weight, n_jobs)

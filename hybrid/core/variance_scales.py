@@ -13,19 +13,23 @@ prior covariance (fitted at ``n = 0``), ``kappa_noise`` the noise variance
 """
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 
+from hybrid.common.seeds import stream
 from hybrid.core.blocks import row_grams
 from hybrid.core.neighbours import nearest
-from hybrid.core.posterior import draw_factor, overlap_of_lists, stability
+from hybrid.core.posterior import draw_factor, gaussian_posterior, overlap_of_lists, stability
 
 GRID = (0.5, 0.75, 1.0, 1.25, 1.5, 2.0, 2.5, 3.0, 4.0)
 
 
 def first_n_mask(indptr, n, seed):
-    """For each CSR row, keep a seeded random ``n`` of its entries."""
+    """For each CSR row, keep a seeded random ``n`` of its entries (the same entries first
+    for every ``n``, so that the lists at each ``n`` grow from one another)."""
     rows = np.repeat(np.arange(len(indptr) - 1), np.diff(indptr))
-    key = np.random.default_rng(seed).random(len(rows))
+    key = stream(seed, "variance ratings").random(len(rows))
     order = np.lexsort((key, rows))
     rank = np.empty(len(rows), dtype=np.int64)
     rank[order] = np.arange(len(rows)) - indptr[rows[order]]
@@ -41,10 +45,7 @@ def _sub_stats(R, Fe, offset, n, seed):
 
 
 def _posterior(grams, rhs, m, Psi, s2):
-    P = s2 * np.linalg.inv(Psi)
-    prec = grams + P
-    z = np.linalg.solve(prec, (rhs + m @ P)[..., None])[..., 0]
-    return z, s2 * np.linalg.inv(prec)
+    return gaussian_posterior(grams, rhs, m, s2 * np.linalg.inv(Psi), s2)
 
 
 def _gap(packets, m_list, Psi, s2, k, eps, off, n_jobs=1):
@@ -98,34 +99,32 @@ def grid_descent(gap, grid=GRID, start=1.0):
     return float(grid[j])
 
 
-def _subset(fold, most, seed):
+def _subset(fold, most, rng):
     """At most ``most`` of a fold's held-out items (a seeded draw): two scalars need far
     fewer than every held-out item, and the check's cost grows with them."""
-    n = fold["R"].shape[0]
+    n = fold.R.shape[0]
     if n <= most:
         return fold
-    keep = np.sort(np.random.default_rng(seed).choice(n, most, replace=False))
-    return {**fold, "R": fold["R"][keep], "grams": fold["grams"][keep], "rhs": fold["rhs"][keep],
-            "m": fold["m"][keep]}
+    keep = np.sort(rng.choice(n, most, replace=False))
+    return replace(fold, R=fold.R[keep], grams=fold.grams[keep], rhs=fold.rhs[keep], m=fold.m[keep])
 
 
 def variance_scales(folds, Psi, sigma2, off, k=10, draws=64, seed=0, low_n=(0,), high_n=(10, 20), most=100,
                     n_jobs=1):
     """``(kappa_prior, kappa_noise)`` that make predicted and actual stability agree.
 
-    ``folds`` are the held-out folds of :func:`hybrid.core.prior.learn_prior`: each
+    ``folds`` are the held-out folds (:class:`hybrid.core.prior.HeldOutFold`): each
     holds its items' ratings ``R`` (CSR rows, ``r - mu``), the users' design
     ``Fe`` and biases ``offset`` fitted without them, their out-of-sample
     projections ``m`` and the candidate vectors ``pool``; at most ``most`` of
     each fold's items are used.
     """
-    folds = [_subset(f, most, seed + 29 + j) for j, f in enumerate(folds)]
-    eps = np.random.default_rng(seed).standard_normal((draws, folds[0]["pool"].shape[1]))
-    m_list = [f["m"] for f in folds]
+    folds = [_subset(f, most, stream(seed, "variance subsets", j)) for j, f in enumerate(folds)]
+    eps = stream(seed, "variance draws").standard_normal((draws, folds[0].pool.shape[1]))
+    m_list = [f.m for f in folds]
 
     def packets(ns):
-        return [([_sub_stats(f["R"], f["Fe"], f["offset"], n, seed) for n in ns],
-                 (f["grams"], f["rhs"]), f["pool"]) for f in folds]
+        return [([_sub_stats(f.R, f.Fe, f.offset, n, seed) for n in ns], (f.grams, f.rhs), f.pool) for f in folds]
 
     low, high = packets(low_n), packets(high_n)
     kp = grid_descent(lambda c: _gap(low, m_list, c * Psi, sigma2, k, eps, off, n_jobs))

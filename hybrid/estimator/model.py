@@ -10,11 +10,12 @@ from sklearn.base import BaseEstimator
 from sklearn.exceptions import ConvergenceWarning, NotFittedError
 
 from hybrid.common.limits import ESTIMATOR, check_estimator, threads
+from hybrid.common.seeds import stream
 from hybrid.core.launch import launch_offset
 from hybrid.core.penalties import NAMES as PENALTIES
 from hybrid.core.penalties import START, choose_penalties
 from hybrid.core.ranksearch import search_rank
-from hybrid.core.steps import Factors, RatingData, objective
+from hybrid.core.steps import Factors, Problem, RatingData, objective
 from hybrid.core.train import fit_factors
 from hybrid.engines.cluster import training_data
 from hybrid.engines.engine import LOCAL, Engine
@@ -247,10 +248,11 @@ class HybridFactorModel(Scores, BaseEstimator):
                 uv, iv, rv = u[valid], i[valid], r[valid]
                 validate = lambda F: float(np.sqrt(np.mean((rv - self.predict_codes(F, data.mu, uv, iv)) ** 2)))
             weight = self.weight_for_counts(data.item_counts())
+            problem = Problem.of(data, self.attributes_, lam_user=self.lam_user_, lam_map=self.lam_map_, weight=weight)
             F, sigma2, sigma2_new = fit_factors(
-                data, self.attributes_, rank=self.rank_, lam_user=self.lam_user_, lam_item=self.lam_item_,
-                lam_map=self.lam_map_, epochs=self.epochs, tol=self.tol, seed=self.seed, prior=self.prior, weight=weight,
-                biases=self.biases, n_jobs=threads(self.n_jobs), validate=validate, on_epoch=on_epoch)
+                problem, rank=self.rank_, lam_item=self.lam_item_, epochs=self.epochs, tol=self.tol, seed=self.seed,
+                biases=self.biases, prior=self.prior, n_jobs=threads(self.n_jobs), validate=validate,
+                on_epoch=on_epoch)
             final = objective(data, F, self.attributes_, self.lam_user_, self.lam_map_, weight)
         self._warn_if_unconverged(F.history)
         self.set_fitted(factors_=F, mu_=float(data.mu), sigma2_=float(sigma2), sigma2_new_=float(sigma2_new),
@@ -320,7 +322,7 @@ class HybridFactorModel(Scores, BaseEstimator):
         idx = np.arange(n)
         if not self.holdout:
             return idx, idx[:0]
-        mask = np.random.default_rng(self.seed + 1).random(n) < self.holdout
+        mask = stream(self.seed, "holdout").random(n) < self.holdout
         return idx[~mask], idx[mask]
 
     def rating_data(self) -> RatingData:

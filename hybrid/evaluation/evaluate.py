@@ -20,6 +20,7 @@ import pandas as pd
 
 from hybrid.common.errors import InputError
 from hybrid.common.limits import check_checks
+from hybrid.common.seeds import sub_seed
 from hybrid.estimator.features import AttributeEncoder
 from hybrid.estimator.model import HybridFactorModel
 from hybrid.evaluation.baselines import BASELINES
@@ -75,7 +76,7 @@ def _tuned(cls, C, train, protocol, seed, min_ratings):
     if len(cls.grid) == 1:
         return cls().fit(C.u[train], C.i[train], C.r[train], C.A, len(C.users))
     sub = pd.DataFrame({"user": C.u[train], "item": C.i[train].astype(str)})
-    inner = _split(sub, "warm" if protocol == "warm" else "cold", 6, seed + 101, min_ratings)[0]
+    inner = _split(sub, "warm" if protocol == "warm" else "cold", 6, sub_seed(seed, "evaluation inner"), min_ratings)[0]
     tr, va = np.flatnonzero(train)[~inner], np.flatnonzero(train)[inner]
     best = min(cls.grid, key=lambda p: rmse(C.r[va], cls(p).fit(C.u[tr], C.i[tr], C.r[tr], C.A,
                                                                  len(C.users)).predict(C.u[va], C.i[va])))
@@ -123,10 +124,11 @@ def evaluate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, prot
     for f, test in enumerate(_split(ratings, protocol, folds, seed, min_ratings)):
         train = ~test
         if protocol == "few":
-            records += _few(C, ratings, attributes, params, train, test, seed + f, reveal, min_ratings, f)
+            records += _few(C, ratings, attributes, params, train, test, sub_seed(seed, "evaluation folds", f), reveal,
+                            min_ratings, f)
             continue
         for cls in BASELINES:
-            model = _tuned(cls, C, train, protocol, seed + f, min_ratings)
+            model = _tuned(cls, C, train, protocol, sub_seed(seed, "evaluation folds", f), min_ratings)
             records.append({"fold": f, "method": cls.name, "uses": cls.uses,
                             **_scores(C, test, model.predict(C.u[test], C.i[test]))})
         hybrid = _hybrid(ratings, attributes, params, train)

@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 
 from hybrid.common.limits import check_checks
+from hybrid.common.seeds import sub_seed
 from hybrid.estimator.model import HybridFactorModel
 from hybrid.evaluation.evaluate import cold_folds
 from hybrid.evaluation.metrics import rmse
@@ -34,7 +35,7 @@ def tune(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, trials: 
     rng = np.random.default_rng(seed)
     test = cold_folds(ratings, 5, seed, min_ratings)[0]
     rest = ratings[~test]
-    valid_in_rest = cold_folds(rest, 5, seed + 1, min_ratings)[0]
+    valid_in_rest = cold_folds(rest, 5, sub_seed(seed, "tune validation"), min_ratings)[0]
     train, valid = rest[~valid_in_rest], rest[valid_in_rest]
     rows = []
     for t in range(trials):

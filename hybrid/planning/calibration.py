@@ -18,12 +18,13 @@ from hybrid.core.neighbours import nearest
 from hybrid.core.posterior import (
     draw_factor,
     overlap_of_lists,
+    posterior_covariance,
     scaled,
     stability,
     vector_part,
 )
 from hybrid.estimator.model import HybridFactorModel
-from hybrid.planning.planner import Assessor
+from hybrid.planning.assess import Assessor
 
 NS = (0, 2, 5, 10, 20, 40)
 
@@ -53,7 +54,7 @@ def _solve_probes(model, A_probe, indptr, idx, vals):
     z, _, _ = solve_rows(indptr, idx, vals, Fe, offset, P, model.launch_blocks(A_probe), weight)
     grams = row_grams(indptr, idx, vals, Fe, offset)[0]
     # no rater saw these ratings: they count with the variance of a new rating
-    cov = model.sigma2_new_ * np.linalg.inv(grams + scaled(P, weight))
+    cov = posterior_covariance(grams, scaled(P, weight), model.sigma2_new_)
     return z, cov
 
 

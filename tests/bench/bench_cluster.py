@@ -42,15 +42,16 @@ def sizes(n_ratings):
 def child(engine, n_ratings, epochs):
     from bench_train import synthetic
 
-    from hybrid.core.steps import RatingData
+    from hybrid.core.steps import Problem, RatingData
     from hybrid.core.train import fit_factors
 
     n_users, n_items = sizes(n_ratings)
     u, i, r, A = synthetic(n_users, n_items, n_ratings)
     reset_peak()
-    fit = dict(rank=32, lam_user=5.0, lam_item=5.0, lam_map=1.0, epochs=epochs, tol=0.0, seed=0, prior="fixed")
+    fit = dict(rank=32, lam_item=5.0, epochs=epochs, tol=0.0, seed=0, prior="fixed")
     if engine == "local":
-        F, _, _ = fit_factors(RatingData.from_codes(u, i, r, n_users, n_items), A, n_jobs=2, **fit)
+        data = RatingData.from_codes(u, i, r, n_users, n_items)
+        F, _, _ = fit_factors(Problem.of(data, A, lam_user=5.0, lam_map=1.0), n_jobs=2, **fit)
         out = {"peak_mb": {"local": peak_mb()}}
     else:
         import distributed
@@ -60,7 +61,7 @@ def child(engine, n_ratings, epochs):
                                       host="127.0.0.1") as cluster, distributed.Client(cluster) as client:
             client.run(reset_peak)
             data = ClusterRatingData.from_codes(client, u, i, r, n_users, n_items, partitions=8, A=A)
-            F, _, _ = fit_factors(data, A, **fit)
+            F, _, _ = fit_factors(Problem.of(data, A, lam_user=5.0, lam_map=1.0), **fit)
             workers = client.run(peak_mb)
             data.close()
         out = {"peak_mb": {"client": peak_mb(), **{f"worker {j}": v for j, v in enumerate(workers.values())}}}

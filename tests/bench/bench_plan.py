@@ -18,7 +18,8 @@ import pandas as pd
 
 from hybrid import HybridFactorModel
 from hybrid.core.posterior import draw_factor, vector_part
-from hybrid.planning.planner import Assessor, plan
+from hybrid.planning.assess import Assessor
+from hybrid.planning.planner import plan
 
 
 def catalogue(seed=0, trusted=20_000, covered=5_000, users=30_000, rank=32):
