@@ -68,3 +68,19 @@ def test_fold_in_keeps_every_derived_attribute_current(club):
 def test_only_set_fitted_names_are_accepted(fitted):
     with pytest.raises(TypeError, match="item_count_"):
         clone(fitted).set_fitted(item_count_=1)
+
+
+def test_the_prior_em_warns_when_its_rounds_run_out():
+    from hybrid.core.prior import em_covariance
+    # items drawn from a known prior (spread 2 and 0.5), each rated by 8 raters with unit noise
+    rng = np.random.default_rng(0)
+    B = rng.normal(size=(400, 8, 2))
+    z = rng.normal(size=(400, 2)) * [2.0, 0.5]
+    y = np.einsum("nki,ni->nk", B, z) + rng.normal(size=(400, 8))
+    grams, rhs = np.einsum("nki,nkj->nij", B, B), np.einsum("nki,nk->ni", B, y)
+    with pytest.warns(ConvergenceWarning, match="all 1 rounds"):
+        em_covariance(grams, rhs, np.zeros((400, 2)), 1.0, np.eye(2), rounds=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ConvergenceWarning)
+        Psi = em_covariance(grams, rhs, np.zeros((400, 2)), 1.0, np.eye(2), rounds=500)
+    assert np.sqrt(np.diag(Psi)) == pytest.approx([2.0, 0.5], rel=0.2)   # and it finds the prior

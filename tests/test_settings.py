@@ -31,7 +31,7 @@ def test_estimator_and_settings_file_share_every_default():
     for name, setting in ESTIMATOR.items():
         assert signature[name].default == setting.default, name
     assert set(signature) - set(ESTIMATOR) == {"schema"}
-    assert DEFAULTS["model"]["holdout"] == HybridFactorModel().holdout == 0.0
+    assert DEFAULTS["model"]["holdout"] == HybridFactorModel().holdout == 0.05
     assert DEFAULTS["model"]["n_jobs"] == HybridFactorModel().n_jobs == -1
     plan_defaults = inspect.signature(plan).parameters
     for name in ("target", "k", "draws", "max_needed", "aim", "responders", "pool_min_ratings", "seed"):

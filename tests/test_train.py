@@ -28,7 +28,7 @@ def test_eckart_young_truncated_svd():
     # regularisation, intercept-only attributes.
     ratings, M = dense_ratings()
     m = HybridFactorModel(rank=3, lam_user=1e-9, lam_item=1e-9, lam_map=1e-9, epochs=3000, tol=1e-15,
-                          biases=False, prior="fixed", seed=1).fit(ratings)
+                          biases=False, prior="fixed", seed=1, holdout=0.0).fit(ratings)   # the whole matrix
     s = np.linalg.svd(M - M.mean(), compute_uv=False)
     optimum = float(np.sum(s[3:] ** 2))
     sse = m.metrics_["train_rmse"] ** 2 * M.size
@@ -272,8 +272,8 @@ def test_rating_data_without_keeps_ratings_equal_to_the_mean():
 
 
 def test_refitting_a_model_on_other_ratings_takes_their_mean(club):
-    m = HybridFactorModel(rank=2, epochs=2, schema=club.schema, text_min_df=1, prior="fixed")
-    m.fit(club.ratings, club.lots)
+    m = HybridFactorModel(rank=2, epochs=2, schema=club.schema, text_min_df=1, prior="fixed", holdout=0.0)
+    m.fit(club.ratings, club.lots)   # every rating in the fit: its mean is theirs
     shifted = club.ratings.assign(rating=club.ratings["rating"] - 1.0)
     m.fit(shifted, club.lots)
     assert m.mu_ == pytest.approx(shifted["rating"].mean())

@@ -46,7 +46,7 @@ def _notes():
     two-line form with a source path."""
     with warnings.catch_warnings():
         warnings.filterwarnings("always", category=ConvergenceWarning)
-        warnings.showwarning = lambda message, category, *rest, **kw: print(f"note: {message}", file=sys.stderr)
+        warnings.showwarning = lambda message, category, *rest, **kw: note(str(message))
         yield
 
 
@@ -67,6 +67,11 @@ def guarded(fn):
         except KeyboardInterrupt:
             fail("interrupted; nothing was written", 130)
     return wrapper
+
+
+def note(text: str) -> None:
+    """One line on stderr about something the user should know (not an error)."""
+    print(f"note: {text}", file=sys.stderr)
 
 
 def check_format(fmt: str) -> str:

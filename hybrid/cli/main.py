@@ -24,6 +24,7 @@ from hybrid.cli.display import (
     emit,
     emit_mapping,
     guarded,
+    note,
     say,
     setting_help,
 )
@@ -134,10 +135,13 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
     s = cfg["score"]
     head = []
 
+    edited = [0]   # rated items whose row differs from the attributes they were fitted with
+
     def keep_head(gen):
         for df in gen:
             if len(head) < 1:
                 head.append(df)
+            edited[0] += int((df["attributes_changed"] & ~df["content_only"]).sum())
             yield df
 
     with engine_client(where) as client:
@@ -146,6 +150,10 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
                              neighbours=s["neighbours"] if neighbours is None else neighbours,
                              chunk=s["chunk"] if chunk is None else chunk, client=client)
         n = write_scores(keep_head(chunks), out)
+    if edited[0]:
+        note(f"{edited[0]} item(s) have ratings in the model and attributes in the file that differ from those "
+             "it was fitted with: they are scored from their fitted vectors (column attributes_changed); "
+             "retrain to fit the new attributes")
     top = head[0].nlargest(10, "expected_rating") if head else pd.DataFrame()
     if len(top):
         top = top.assign(nearest=[v[0][0] if v else "" for v in top["nearest"]])[

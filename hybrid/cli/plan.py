@@ -4,7 +4,6 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Optional
 
-import pandas as pd
 import typer
 
 from hybrid.app.config import load_config, model_params, settings_for, with_engine
@@ -22,7 +21,7 @@ from hybrid.common.errors import InputError
 from hybrid.estimator.model import HybridFactorModel
 from hybrid.estimator.updates import import_counts
 from hybrid.io.outputs import atomic_path, check_model_output, check_output, write_table
-from hybrid.io.tables import read_attributes, read_item_list, read_ratings
+from hybrid.io.tables import read_attributes, read_item_list, read_plan, read_ratings
 
 
 def plan_command(
@@ -136,28 +135,6 @@ def calibrate_command(
     result = calibrate(table, attrs, params, n_probe=probes, k=cfg["plan"]["k"], draws=cfg["plan"]["draws"],
                        seed=seed)
     emit(result.round(4), format, "predicted against actual stability of probed items")
-
-
-def read_plan(path: Path) -> pd.DataFrame:
-    """A plan written by `hybrid plan` (CSV, JSON, JSON Lines or Parquet)."""
-    if not path.is_file():
-        raise InputError("plan file not found", file=str(path))
-    suffix = path.suffix.lower()
-    try:
-        if suffix == ".json":
-            df = pd.read_json(path, orient="records", dtype={"item": str, "model_fingerprint": str})
-        elif suffix in (".jsonl", ".ndjson"):
-            df = pd.read_json(path, orient="records", lines=True, dtype={"item": str, "model_fingerprint": str})
-        elif suffix == ".parquet":
-            df = pd.read_parquet(path).astype({"item": str}, errors="ignore")
-        else:
-            df = pd.read_csv(path, dtype={"item": str, "model_fingerprint": str})
-    except (ValueError, OSError) as exc:
-        raise InputError(f"not a readable plan ({str(exc).splitlines()[0]})", file=str(path)) from None
-    missing = [c for c in ("item", "status", "ratings", "needed") if c not in df.columns]
-    if missing:
-        raise InputError(f"not a plan: missing column '{missing[0]}'", file=str(path), column=missing[0])
-    return df
 
 
 def report_command(

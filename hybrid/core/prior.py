@@ -13,9 +13,11 @@ spread (the empirical-Bayes estimate of Morris, JASA 1983).
 """
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
+from sklearn.exceptions import ConvergenceWarning
 
 from hybrid.common.limits import SETTINGS
 from hybrid.common.seeds import stream
@@ -96,6 +98,8 @@ def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-4, wei
         if np.abs(Psi_next - Psi).max() <= tol * np.abs(Psi).max():
             return Psi_next
         Psi = Psi_next
+    warnings.warn(f"the learned prior's EM used all {rounds} rounds before settling (tol {tol:g}); "
+                  "the planner's uncertainty may be a little off", ConvergenceWarning, stacklevel=2)
     return Psi
 
 

@@ -28,7 +28,9 @@ def score_items(model, attributes: pd.DataFrame, *, liked: float = _S["liked"], 
     With a Dask ``client`` the chunks are scored on its workers (the model is
     sent to each once, ``window`` chunks in flight); the rows are the same.
 
-    Columns: ``item``, ``content_only`` (no ratings behind its vector),
+    Columns: ``item``, ``content_only`` (no ratings behind its vector: projected from its row
+    of ``attributes``), ``attributes_changed`` (the model knows the item and the row differs
+    from the attributes it holds; a rated item is still scored from its fitted vector),
     ``bias`` (projected), ``expected_rating`` (mean over all users of the
     scores limited to the training ratings' range),
     ``liked_share`` (share of users expected at or above ``liked``),
@@ -61,6 +63,7 @@ def _score_chunk(shared, part, known):
     ids = part.index.to_numpy(dtype=str)
     z = model.blocks_for_items(ids, part)
     counts = np.where(known >= 0, model.item_counts_[np.maximum(known, 0)], 0)
+    changed = model.attributes_changed(part)
     block = model.clip(next(model.score_blocks(z, chunk=len(z)))[1])
     top = np.argpartition(-block, n_aud - 1, axis=1)[:, :n_aud] if n_aud else np.zeros((len(z), 0), int)
     top_scores = np.take_along_axis(block, top, 1)
@@ -72,6 +75,9 @@ def _score_chunk(shared, part, known):
     users, items = model.user_ids_, model.item_ids_[rated]
     return pd.DataFrame({
         "item": ids, "content_only": counts == 0,
+        # a rated item is scored from its fitted vector whatever its row says; this marks where
+        # the row differs from what the model was fitted with (an unrated one follows the row)
+        "attributes_changed": changed,
         "bias": z[:, 0] if model.biases else 0.0,
         "expected_rating": block.mean(axis=1), "liked_share": (block >= liked).mean(axis=1),
         "audience": [list(zip(users[t].tolist(), np.round(v, 4).tolist())) for t, v in zip(top, top_scores)],

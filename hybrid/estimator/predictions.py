@@ -19,20 +19,35 @@ class Scores:
         return np.clip(scores, *self.rating_range_)
 
     def blocks_for_items(self, items, attributes=None):
-        """Blocks of known items, projections of the others (from ``attributes``)."""
+        """The blocks of ``items``: a rated item's fitted block; an item without ratings
+        projected from its row of ``attributes`` when it has one (the table given is the truth
+        for what an unrated item is: an edited price or process is scored as edited), else
+        the block the model holds; an item the model does not know needs a row."""
         F = self.check_fitted()
         items = np.asarray(items, dtype=str)
         pos = pd.Index(self.item_ids_).get_indexer(items)
+        has_row = np.zeros(len(items), bool) if attributes is None else np.isin(items, attributes.index.astype(str))
+        if ((pos < 0) & ~has_row).any():
+            raise InputError(f"item '{items[(pos < 0) & ~has_row][0]}' is not in the model and has no attribute row")
+        rated = (pos >= 0) & (self.item_counts_[np.maximum(pos, 0)] > 0)
+        from_row = has_row & ~rated
         z = np.empty((len(items), F.item.shape[1]))
-        known = pos >= 0
-        z[known] = F.item[pos[known]]
-        if (~known).any():
-            unknown = items[~known]
-            if attributes is None or not np.isin(unknown, attributes.index.astype(str)).all():
-                missing = unknown[~np.isin(unknown, [] if attributes is None else attributes.index.astype(str))]
-                raise InputError(f"item '{missing[0]}' is not in the model and has no attribute row")
-            z[~known] = self._project_blocks(attributes.loc[unknown])
+        z[~from_row] = F.item[pos[~from_row]]
+        if from_row.any():
+            z[from_row] = self._project_blocks(attributes.loc[items[from_row]])
         return z
+
+    def attributes_changed(self, attributes: pd.DataFrame) -> np.ndarray:
+        """For each row of ``attributes``: whether the model knows the item and its encoded
+        attributes differ from those the model holds for it (a corrected price, say)."""
+        self.check_fitted()
+        pos = pd.Index(self.item_ids_).get_indexer(attributes.index.astype(str))
+        changed = np.zeros(len(pos), bool)
+        known = np.flatnonzero(pos >= 0)
+        if known.size:
+            diff = self.features_.transform(attributes.iloc[known]) - self.attributes_[pos[known]]
+            changed[known] = np.asarray(abs(diff).max(axis=1).todense()).ravel() > 1e-9
+        return changed
 
     def _project_blocks(self, attributes):
         return self.launch_blocks(self.features_.transform(attributes))

@@ -311,3 +311,25 @@ def _same_number(a: str, b: str) -> bool:
         return float(a) == float(b)
     except ValueError:
         return False
+
+
+def read_plan(path: Path) -> pd.DataFrame:
+    """A plan written by `hybrid plan` (CSV, JSON, JSON Lines or Parquet)."""
+    if not path.is_file():
+        raise InputError("plan file not found", file=str(path))
+    suffix = path.suffix.lower()
+    try:
+        if suffix == ".json":
+            df = pd.read_json(path, orient="records", dtype={"item": str, "model_fingerprint": str})
+        elif suffix in (".jsonl", ".ndjson"):
+            df = pd.read_json(path, orient="records", lines=True, dtype={"item": str, "model_fingerprint": str})
+        elif suffix == ".parquet":
+            df = pd.read_parquet(path).astype({"item": str}, errors="ignore")
+        else:
+            df = pd.read_csv(path, dtype={"item": str, "model_fingerprint": str})
+    except (ValueError, OSError) as exc:
+        raise InputError(f"not a readable plan ({str(exc).splitlines()[0]})", file=str(path)) from None
+    missing = [c for c in ("item", "status", "ratings", "needed") if c not in df.columns]
+    if missing:
+        raise InputError(f"not a plan: missing column '{missing[0]}'", file=str(path), column=missing[0])
+    return df
