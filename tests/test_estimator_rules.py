@@ -84,3 +84,15 @@ def test_the_prior_em_warns_when_its_rounds_run_out():
         warnings.simplefilter("error", ConvergenceWarning)
         Psi = em_covariance(grams, rhs, np.zeros((400, 2)), 1.0, np.eye(2), rounds=500)
     assert np.sqrt(np.diag(Psi)) == pytest.approx([2.0, 0.5], rel=0.2)   # and it finds the prior
+
+
+def test_where_a_fit_runs_is_not_a_setting(club):
+    from hybrid.engines.engine import Engine
+
+    assert not {"engine", "address", "partitions", "shared_dir"} & set(HybridFactorModel().get_params())
+    m = HybridFactorModel(rank=2, epochs=2, schema=club.schema, text_min_df=1)
+    with pytest.raises(ValueError, match="engine must be an Engine"):
+        m.fit(club.ratings, club.lots, engine="dask")
+    with pytest.raises(ValueError, match="engine must be one of 'local', 'dask', found 'spark'"):
+        Engine("spark")
+    assert m.fit(club.ratings, club.lots).metrics_["engine"]["kind"] == "local"

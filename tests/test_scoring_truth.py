@@ -59,6 +59,65 @@ def test_an_edited_rated_item_keeps_its_fitted_score_and_is_flagged(club_model, 
                                     "--config", str(cfg), "--out", str(tmp_path / "s.csv")])
     assert done.exit_code == 0, done.output
     notes = [line for line in done.stderr.splitlines() if line.startswith("note: ")]
-    assert len(notes) == 1 and notes[0].startswith("note: 1 item(s) have ratings in the model")
+    edited_note = [line for line in notes if "have ratings in the model" in line]
+    assert len(edited_note) == 1 and edited_note[0].startswith("note: 1 item(s) have ratings in the model")
+    assert any("column 'price': 1 item(s) outside the training range" in line for line in notes)   # x3
     out = pd.read_csv(tmp_path / "s.csv", dtype={"item": str}).set_index("item")
     assert bool(out.loc[rated, "attributes_changed"]) and int(out["attributes_changed"].sum()) == 1
+
+
+def test_what_looks_odd_is_said_once_per_kind_and_per_item(club_model):
+    from hybrid.estimator.oddities import OddInputWarning
+
+    club, model = club_model
+    rows = club.new_lots.iloc[:4].copy()
+    known_region = club.lots["region"].iloc[0]
+    rows.iloc[0, rows.columns.get_loc("region")] = known_region.upper()      # another case
+    rows.iloc[1, rows.columns.get_loc("process")] = "carbonic maceration"   # never seen
+    rows.iloc[2, rows.columns.get_loc("price")] = club.lots["price"].max() * 5
+    rows.iloc[3, rows.columns.get_loc("notes")] = "zzyzx qwerty"            # no known word
+    rows = rows.drop(columns=["altitude_m"])
+    with pytest.warns(OddInputWarning) as seen:
+        out = _score(model, rows)
+    lines = [str(w.message) for w in seen]
+    assert len(lines) == 5, lines   # one per kind and column
+    assert any(line.startswith("column 'altitude_m' (number) is missing") for line in lines)
+    assert any(f"did you mean '{known_region}'?" in line for line in lines)
+    assert any("column 'process': 1 item(s) with values never seen" in line for line in lines)
+    assert any("column 'price': 1 item(s) outside the training range" in line for line in lines)
+    assert any("column 'notes': 1 item(s) whose text has no word" in line for line in lines)
+    w = out["warnings"].tolist()
+    assert all("no altitude_m" in x for x in w)
+    assert "region" in w[0] and "process 'carbonic maceration'" in w[1] and "price" in w[2] and "notes" in w[3]
+
+
+def test_numbers_beyond_the_training_range_are_held_to_it(club_model):
+    club, model = club_model
+    top = club.lots["price"].max()
+    row = club.new_lots.iloc[[0]].copy()
+    at_top, far = row.assign(price=top), row.assign(price=top * 5)
+    with pytest.warns(UserWarning):
+        clipped = pd.concat(score_items(model, far, audience=1, neighbours=1))["expected_rating"].iloc[0]
+        free = pd.concat(score_items(model, far, audience=1, neighbours=1, clip_numbers=False))
+    edge = pd.concat(score_items(model, at_top, audience=1, neighbours=1))["expected_rating"].iloc[0]
+    assert clipped == pytest.approx(edge, abs=1e-12)
+    assert free["expected_rating"].iloc[0] != pytest.approx(edge, abs=1e-6)
+    assert "outside the training range" in free["warnings"].iloc[0]
+
+
+def test_the_screen_shows_the_best_of_the_whole_file_not_of_its_first_chunk(club_model, tmp_path):
+    import io
+
+    club, model = club_model
+    model.save(tmp_path / "m.hybrid")
+    paths = write_samples(tmp_path, club)
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(open("configs/coffee.toml").read())
+    done = CliRunner().invoke(app, ["score", str(tmp_path / "m.hybrid"), str(paths["new_lots"]), "--config", str(cfg),
+                                    "--out", str(tmp_path / "s.csv"), "--chunk", "2", "--format", "csv"])
+    assert done.exit_code == 0, done.output
+    shown = pd.read_csv(io.StringIO(done.stdout), dtype={"item": str})
+    scores = pd.read_csv(tmp_path / "s.csv", dtype={"item": str})
+    best = scores.nlargest(len(shown), "expected_rating")["item"].tolist()
+    assert len(shown) == min(10, len(scores)) and shown["item"].tolist() == best
+    assert set(best) - set(scores["item"].iloc[:2])   # some of them beyond the first chunk

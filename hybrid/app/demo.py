@@ -17,7 +17,7 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
 
     Returns the paths written, by name.
     """
-    from hybrid.app.workflows import train_model
+    from hybrid.app.workflows import score_arguments, train_model
     from hybrid.estimator.batch import score_items, write_scores
     from hybrid.io.tables import read_attributes
 
@@ -45,9 +45,7 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
     say(f"Trained a rank-{model.rank} model in {m['seconds']:.1f} s: validation RMSE "
         f"{m['valid_rmse']:.3f} on held-out ratings (the ratings' own spread is {spread:.3f}).")
 
-    scored = pd.concat(list(score_items(model, new, liked=cfg["score"]["liked"],
-                                        audience=cfg["score"]["audience"],
-                                        neighbours=cfg["score"]["neighbours"])))
+    scored = pd.concat(list(score_items(model, new, **score_arguments(cfg))))
     paths["scores"] = folder / "new_lots_scored.csv"
     write_scores([scored], paths["scores"])
     best = scored.nlargest(3, "expected_rating")

@@ -41,3 +41,11 @@ def plan_arguments(cfg: dict, **flags) -> dict:
             "pool_min_ratings": p["pool_min_ratings"]}
     args.update({name: value for name, value in flags.items() if value is not None})
     return args
+
+
+def score_arguments(cfg: dict, **flags) -> dict:
+    """The keyword arguments of :func:`hybrid.estimator.batch.score_items` from settings, with
+    any flag that was given in place of its setting (``hybrid score`` and the demo)."""
+    args = dict(cfg["score"])
+    args.update({name: value for name, value in flags.items() if value is not None})
+    return args

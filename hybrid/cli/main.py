@@ -14,7 +14,7 @@ import typer
 
 from hybrid import __version__
 from hybrid.app.config import load_config, model_params, settings_for, with_engine
-from hybrid.app.workflows import train_model
+from hybrid.app.workflows import score_arguments, train_model
 from hybrid.cli.display import (
     ADDRESS_HELP,
     ENGINE_HELP,
@@ -106,6 +106,9 @@ def _summary(model) -> dict:
                                           if v >= 0.005) or "not recorded"}
 
 
+_SHOWN = ["item", "content_only", "expected_rating", "liked_share"]
+
+
 @app.command()
 @guarded
 def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
@@ -132,33 +135,28 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
     cfg = settings_for(model, config)
     where = with_engine(load_config(config), engine, address)  # where to run is not the model's
     attrs = read_attributes(new_items, cfg, model.features_.spec(), require_all=False)
-    s = cfg["score"]
-    head = []
+    seen = {"best": pd.DataFrame(), "edited": 0}
 
-    edited = [0]   # rated items whose row differs from the attributes they were fitted with
-
-    def keep_head(gen):
+    def watch(gen):
+        # the ten best of the whole file, and the rated items whose row differs from the
+        # attributes they were fitted with, kept as the chunks stream past (one held at a time)
         for df in gen:
-            if len(head) < 1:
-                head.append(df)
-            edited[0] += int((df["attributes_changed"] & ~df["content_only"]).sum())
+            seen["best"] = pd.concat([seen["best"], df[_SHOWN + ["nearest"]]]).nlargest(10, "expected_rating")
+            seen["edited"] += int((df["attributes_changed"] & ~df["content_only"]).sum())
             yield df
 
     with engine_client(where) as client:
-        chunks = score_items(model, attrs, liked=s["liked"] if liked is None else liked,
-                             audience=s["audience"] if audience is None else audience,
-                             neighbours=s["neighbours"] if neighbours is None else neighbours,
-                             chunk=s["chunk"] if chunk is None else chunk, client=client)
-        n = write_scores(keep_head(chunks), out)
-    if edited[0]:
-        note(f"{edited[0]} item(s) have ratings in the model and attributes in the file that differ from those "
+        args = score_arguments(cfg, liked=liked, audience=audience, neighbours=neighbours, chunk=chunk)
+        chunks = score_items(model, attrs, **args, client=client)
+        n = write_scores(watch(chunks), out)
+    if seen["edited"]:
+        note(f"{seen['edited']} item(s) have ratings in the model and attributes in the file that differ from those "
              "it was fitted with: they are scored from their fitted vectors (column attributes_changed); "
              "retrain to fit the new attributes")
-    top = head[0].nlargest(10, "expected_rating") if head else pd.DataFrame()
+    top = seen["best"]
     if len(top):
-        top = top.assign(nearest=[v[0][0] if v else "" for v in top["nearest"]])[
-            ["item", "content_only", "expected_rating", "liked_share", "nearest"]]
-        emit(top, format, f"{n} items scored into {out}; the best of the first chunk")
+        top = top.assign(nearest=[v[0][0] if v else "" for v in top["nearest"]])
+        emit(top, format, f"{n} items scored into {out}; the {len(top)} with the highest expected rating")
 
 
 @app.command()

@@ -143,6 +143,8 @@ SETTINGS = {
         "audience": S(10, _whole(0), "users listed per new item"),
         "neighbours": S(5, _whole(0), "nearest existing items listed per new item"),
         "chunk": S(2000, _whole(1), "items scored at a time (bounds memory)"),
+        "clip_numbers": S(True, ((lambda v: isinstance(v, bool)), "true or false"),
+                          "hold new items' numbers to the range seen in training before projecting"),
     },
     "plan": {
         "target": S(0.8, _real(lambda v: 0 < v <= 1, "a fraction in (0, 1]"),

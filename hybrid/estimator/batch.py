@@ -7,6 +7,7 @@ items streams through without ever holding the full matrix.
 from __future__ import annotations
 
 import json
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -16,13 +17,15 @@ import pyarrow.parquet as pq
 
 from hybrid.common.limits import check_score, defaults
 from hybrid.core.neighbours import nearest
+from hybrid.estimator.oddities import OddInputWarning, find_oddities
 from hybrid.io.outputs import atomic_path, output_format
 
 _S = defaults("score")   # the defaults, from the one table
 
 
 def score_items(model, attributes: pd.DataFrame, *, liked: float = _S["liked"], audience: int = _S["audience"],
-                neighbours: int = _S["neighbours"], chunk: int = _S["chunk"], client=None, window: int = 4):
+                neighbours: int = _S["neighbours"], chunk: int = _S["chunk"], clip_numbers: bool = _S["clip_numbers"],
+                client=None, window: int = 4):
     """Yield one DataFrame per chunk of items, one row per item.
 
     With a Dask ``client`` the chunks are scored on its workers (the model is
@@ -35,7 +38,10 @@ def score_items(model, attributes: pd.DataFrame, *, liked: float = _S["liked"], 
     scores limited to the training ratings' range),
     ``liked_share`` (share of users expected at or above ``liked``),
     ``audience`` (list of (user, expected rating), best first) and
-    ``nearest`` (list of (item, distance)) among the model's rated items.
+    ``nearest`` (list of (item, distance)) among the model's rated items, and ``warnings``
+    (what looks odd in the item's row, '' if nothing: :mod:`hybrid.estimator.oddities`; each
+    kind is also warned once, an :class:`~hybrid.estimator.oddities.OddInputWarning`).
+    ``clip_numbers`` holds numbers to the training range before projecting.
 
     Examples
     --------
@@ -47,21 +53,26 @@ def score_items(model, attributes: pd.DataFrame, *, liked: float = _S["liked"], 
     >>> rows["content_only"].tolist(), len(rows["audience"].iloc[0])
     ([True, True, True], 2)
     """
-    check_score(chunk=chunk, audience=audience, neighbours=neighbours, liked=liked)
+    check_score(chunk=chunk, audience=audience, neighbours=neighbours, liked=liked, clip_numbers=clip_numbers)
     from hybrid.engines.cluster import map_chunks
     known = pd.Index(model.item_ids_).get_indexer(attributes.index.astype(str))
-    parts = ((attributes.iloc[s:s + chunk], known[s:s + chunk]) for s in range(0, len(attributes), chunk))
-    yield from map_chunks(client, _score_chunk, (model, liked, audience, neighbours), parts, window)
+    odd = find_oddities(model.features_, attributes)
+    for line in odd.summary:   # once per run, whatever the chunks
+        warnings.warn(line, OddInputWarning, stacklevel=2)
+    notes = np.asarray(odd.per_item, dtype=object)
+    parts = ((attributes.iloc[s:s + chunk], known[s:s + chunk], notes[s:s + chunk])
+             for s in range(0, len(attributes), chunk))
+    yield from map_chunks(client, _score_chunk, (model, liked, audience, neighbours, clip_numbers), parts, window)
 
 
-def _score_chunk(shared, part, known):
+def _score_chunk(shared, part, known, notes):
     """The rows of one chunk of items (a pure function of the model and the chunk)."""
-    model, liked, audience, neighbours = shared
+    model, liked, audience, neighbours, clip_numbers = shared
     off = 1 if model.biases else 0
     rated = np.flatnonzero(model.item_counts_ > 0)
     n_aud = min(audience, len(model.user_ids_))
     ids = part.index.to_numpy(dtype=str)
-    z = model.blocks_for_items(ids, part)
+    z = model.blocks_for_items(ids, part, clip_numbers=clip_numbers)
     counts = np.where(known >= 0, model.item_counts_[np.maximum(known, 0)], 0)
     changed = model.attributes_changed(part)
     block = model.clip(next(model.score_blocks(z, chunk=len(z)))[1])
@@ -82,6 +93,7 @@ def _score_chunk(shared, part, known):
         "expected_rating": block.mean(axis=1), "liked_share": (block >= liked).mean(axis=1),
         "audience": [list(zip(users[t].tolist(), np.round(v, 4).tolist())) for t, v in zip(top, top_scores)],
         "nearest": [list(zip(items[t].tolist(), np.round(v, 6).tolist())) for t, v in zip(nidx, ndist)],
+        "warnings": list(notes),
     })
 
 

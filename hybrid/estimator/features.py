@@ -22,7 +22,13 @@ def _texts(values: pd.Series) -> list[str]:
     return values.fillna("").astype(str).tolist()
 
 
-def _split_tags(values: pd.Series, sep: str) -> list[list[str]]:
+def number_values(values: pd.Series) -> np.ndarray:
+    """A column of numbers as floats (blank and unreadable cells are NaN)."""
+    x = pd.to_numeric(values.astype(str).str.strip().replace({"": None, "nan": None}), errors="coerce")
+    return x.to_numpy(dtype=float)
+
+
+def split_tags(values: pd.Series, sep: str) -> list[list[str]]:
     return [[t.strip() for t in str(v).split(sep) if t.strip()] if isinstance(v, str) else []
             for v in values.fillna("")]
 
@@ -106,15 +112,16 @@ class AttributeEncoder:
         return {"categories": sorted(set(v[v != ""]))}
 
     def _fit_tags(self, values):
-        return {"tags": sorted({t for row in _split_tags(values, self.tag_separator) for t in row})}
+        return {"tags": sorted({t for row in split_tags(values, self.tag_separator) for t in row})}
 
     def _fit_number(self, values):
-        x = pd.to_numeric(values.astype(str).str.strip().replace({"": None, "nan": None}), errors="coerce")
-        x = x.to_numpy(dtype=float)
+        x = number_values(values)
         median = float(np.nanmedian(x)) if np.isfinite(x).any() else 0.0
         x = np.where(np.isfinite(x), x, median)
         scale = float(x.std())
-        return {"median": median, "mean": float(x.mean()), "scale": scale if scale > 0 else 1.0}
+        # the range seen, so that scoring can say (and clip) what lies outside it
+        return {"median": median, "mean": float(x.mean()), "scale": scale if scale > 0 else 1.0,
+                "low": float(x.min()) if len(x) else median, "high": float(x.max()) if len(x) else median}
 
     @staticmethod
     def _names(block):
@@ -127,7 +134,7 @@ class AttributeEncoder:
             return block["tags"]
         return ["(value)"]
 
-    def transform(self, attributes: pd.DataFrame) -> sp.csr_matrix:
+    def transform(self, attributes: pd.DataFrame, clip_numbers: bool = False) -> sp.csr_matrix:
         """The design matrix, one row per row of ``attributes``.
 
         Columns the model knows but the table lacks give zero features (an
@@ -141,9 +148,15 @@ class AttributeEncoder:
             if col not in attributes.columns:
                 parts.append(sp.csr_matrix((n, width)))
                 continue
-            part = getattr(self, f"_apply_{block['type']}")(block, attributes[col])
-            parts.append(part * block["weight"])
+            parts.append(self.transform_column(block, attributes[col], clip_numbers) * block["weight"])
         return sp.hstack(parts, format="csr")
+
+    def transform_column(self, block, values, clip_numbers=False):
+        """One attribute column's features (before its weight); ``clip_numbers`` holds numbers
+        to the range seen in training (models saved before ranges were kept are not clipped)."""
+        if block["type"] == "number":
+            return self._apply_number(block, values, clip_numbers)
+        return getattr(self, f"_apply_{block['type']}")(block, values)
 
     def _apply_text(self, block, values):
         if not block["vocabulary"]:
@@ -160,13 +173,14 @@ class AttributeEncoder:
     def _apply_tags(self, block, values):
         index = {t: j for j, t in enumerate(block["tags"])}
         rows = [[index[t] for t in dict.fromkeys(r) if t in index]
-                for r in _split_tags(values, self.tag_separator)]
+                for r in split_tags(values, self.tag_separator)]
         return _indicator(rows, len(index))
 
-    def _apply_number(self, block, values):
-        x = pd.to_numeric(values.astype(str).str.strip().replace({"": None, "nan": None}), errors="coerce")
-        x = x.to_numpy(dtype=float)
+    def _apply_number(self, block, values, clip=False):
+        x = number_values(values)
         x = np.where(np.isfinite(x), x, block["median"])
+        if clip and "low" in block:
+            x = np.clip(x, block["low"], block["high"])
         return sp.csr_matrix(((x - block["mean"]) / block["scale"])[:, None])
 
     def get_state(self) -> dict:

@@ -9,6 +9,7 @@ import pandas as pd
 from sklearn.base import BaseEstimator
 from sklearn.exceptions import ConvergenceWarning
 
+from hybrid.common.errors import InputError
 from hybrid.common.limits import ESTIMATOR, check_estimator, threads
 from hybrid.common.seeds import stream
 from hybrid.core.launch import launch_offset
@@ -212,6 +213,8 @@ class HybridFactorModel(Scores, FittedViews, BaseEstimator):
         """
         self._check_params()
         engine = LOCAL if engine is None else engine
+        if not isinstance(engine, Engine):
+            raise InputError(f"engine must be an Engine (hybrid.engines.engine.Engine), found {engine!r}")
         t0 = time.perf_counter()
         ratings = validate_ratings(ratings, {"user": "user", "item": "item", "rating": "rating"},
                                    scale=(-np.inf, np.inf), source="ratings")

@@ -18,7 +18,7 @@ class Scores:
         expected ratings; the raw scores keep their linear structure)."""
         return np.clip(scores, *self.rating_range_)
 
-    def blocks_for_items(self, items, attributes=None):
+    def blocks_for_items(self, items, attributes=None, clip_numbers=False):
         """The blocks of ``items``: a rated item's fitted block; an item without ratings
         projected from its row of ``attributes`` when it has one (the table given is the truth
         for what an unrated item is: an edited price or process is scored as edited), else
@@ -34,7 +34,7 @@ class Scores:
         z = np.empty((len(items), F.item.shape[1]))
         z[~from_row] = F.item[pos[~from_row]]
         if from_row.any():
-            z[from_row] = self._project_blocks(attributes.loc[items[from_row]])
+            z[from_row] = self._project_blocks(attributes.loc[items[from_row]], clip_numbers)
         return z
 
     def attributes_changed(self, attributes: pd.DataFrame) -> np.ndarray:
@@ -49,8 +49,8 @@ class Scores:
             changed[known] = np.asarray(abs(diff).max(axis=1).todense()).ravel() > 1e-9
         return changed
 
-    def _project_blocks(self, attributes):
-        return self.launch_blocks(self.features_.transform(attributes))
+    def _project_blocks(self, attributes, clip_numbers=False):
+        return self.launch_blocks(self.features_.transform(attributes, clip_numbers=clip_numbers))
 
     def launch_blocks(self, A):
         """Prior means of new items from their attribute rows: projection plus launch offset."""
