@@ -105,7 +105,15 @@ def _choice_ok(*options):
     return lambda text: text in options
 
 
+def _columns_ok(*columns):
+    # a comma-separated list of the file's columns; empty parts are dropped ('' keeps none)
+    return lambda text: all(part.strip() in columns for part in text.split(",") if part.strip())
+
+
 FORMATS = ("table", "csv", "json")
+# the lots' columns (the id, lot, aside): what --by and --keep may name
+LOT_COLUMNS = ("name", "notes", "region", "process", "roast", "altitude_m", "price", "certifications", "arrival",
+               "margin")
 ENGINES = ("local",)          # 'dask' is valid too, but starts a cluster: not fuzzed
 
 
@@ -131,8 +139,13 @@ def commands(F: Files, out: Path) -> list[Command]:
                 {1: "ratings", 2: "lots", "--config": "config"}, {"--out": ".hybrid"}, cheap=False),
         Command("score", lambda: ["score", F["model"], F["new_lots"], "--out", o(".csv")],
                 {"--liked": _float_ok(lambda v: True), "--audience": _int_ok(0), "--neighbours": _int_ok(0),
-                 "--chunk": _int_ok(1), "--engine": _choice_ok(*ENGINES), "--format": _choice_ok(*FORMATS)},
+                 "--chunk": _int_ok(1), "--engine": _choice_ok(*ENGINES), "--format": _choice_ok(*FORMATS),
+                 "--audience-by": _choice_ok("taste", "rating"), "--interval": _float_ok(lambda v: 0 < v < 1),
+                 "--keep": _columns_ok(*LOT_COLUMNS),
+                 "--sort": _choice_ok("expected_rating", "expected_high", "item", "liked_share", "name")},
                 {1: "model", 2: "new_lots", "--config": "config"}, {"--out": ".csv"}),
+        Command("why", lambda: ["why", F["model"], "L0001"],
+                {"--top": _int_ok(0), "--format": _choice_ok(*FORMATS)}, {1: "model", "--new-items": "new_lots"}, {}),
         Command("related", lambda: ["related", F["model"], "L0001", "--k", "3"],
                 {"--k": _int_ok(1), "--metric": _choice_ok("euclidean", "cosine"),
                  "--format": _choice_ok(*FORMATS)},
@@ -159,7 +172,7 @@ def commands(F: Files, out: Path) -> list[Command]:
                 {"--trials": _int_ok(1), "--seed": _int_ok(0), "--format": _choice_ok(*FORMATS)},
                 {1: "ratings", 2: "lots", "--config": "config"}, {"--out": ".toml"}, cheap=False),
         Command("report", lambda: ["report", F["model"], "--plan", F["plan"], "--out", o(".html")],
-                {"--by": _choice_ok("region", "process", "roast", "price", "altitude_m", "certifications")},
+                {"--by": _choice_ok(*LOT_COLUMNS)},
                 {1: "model", "--plan": "plan", "--config": "config"}, {"--out": ".html"}),
     ]
 

@@ -62,7 +62,7 @@ def test_score_csv_and_jsonl_agree(files, tmp_path):
     assert len(table) == len(recs) == 6
     assert np.allclose(table["expected_rating"], [r["expected_rating"] for r in recs])
     assert all(r["content_only"] for r in recs) and len(recs[0]["audience"]) == 3
-    assert table["user_1_rating"].ge(table["user_2_rating"]).all()
+    assert table["user_1_lift"].ge(table["user_2_lift"]).all()   # the audience by taste, best first
     # the expected rating is the mean of the item's column of the score matrix
     m = hybrid.load(files["model"])
     new = pd.read_csv(files["new_lots"], dtype=str).set_index("lot")

@@ -41,8 +41,8 @@ def test_blocked_computation_matches_direct(monkeypatch):
 
 
 def test_scoring_is_independent_of_chunk_size(fitted, club):
-    a = pd.concat(score_items(fitted, club.new_lots, chunk=5, audience=4, neighbours=3))
-    b = pd.concat(score_items(fitted, club.new_lots, chunk=1000, audience=4, neighbours=3))
+    a = pd.concat(score_items(fitted, club.new_lots, chunk=5, audience=4, neighbours=3, audience_by="rating"))
+    b = pd.concat(score_items(fitted, club.new_lots, chunk=1000, audience=4, neighbours=3, audience_by="rating"))
     assert a.reset_index(drop=True).equals(b.reset_index(drop=True))
     S = fitted.score_matrix(club.new_lots.index, attributes=club.new_lots)
     best = np.argmax(S[0])

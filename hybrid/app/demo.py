@@ -47,14 +47,16 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
 
     scored = pd.concat(list(score_items(model, new, **score_arguments(cfg))))
     paths["scores"] = folder / "new_lots_scored.csv"
-    write_scores([scored], paths["scores"])
+    write_scores([scored], paths["scores"], reasons=cfg["score"]["reasons"])
     best = scored.nlargest(3, "expected_rating")
     say(f"Scored the {len(scored)} new lots from their attributes alone (estimates):")
     for row in best.itertuples():
         lot = club.new_lots.loc[row.item]
         near = ", ".join(i for i, _ in row.nearest[:3])
+        reason = ", ".join(f"{name} {effect:+.2f}" for name, effect in row.reasons[:2])
         say(f"  {row.item} {lot['name']} ({lot['region']}, {lot['process']}, notes: {lot['notes']}): "
-            f"expected {row.expected_rating:.2f}, {row.liked_share:.0%} of members likely to give "
+            f"expected {row.expected_rating:.2f} (80% interval {row.expected_low:.2f} to {row.expected_high:.2f}; "
+            f"most from {reason}), {row.liked_share:.0%} of members likely to give "
             f"{cfg['score']['liked']:g}+; nearest existing lots {near}")
     _campaign(model, new, cfg, folder, paths, say)
     say(f"Files are in {folder}/ (ratings, lots, new lots, settings, model, scores, plan, asks, "

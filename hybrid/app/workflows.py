@@ -4,6 +4,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from hybrid.app.config import model_params
+from hybrid.common.limits import check_score
 from hybrid.engines.cluster import engine_client
 from hybrid.engines.engine import Engine
 from hybrid.estimator.model import HybridFactorModel
@@ -48,4 +49,5 @@ def score_arguments(cfg: dict, **flags) -> dict:
     any flag that was given in place of its setting (``hybrid score`` and the demo)."""
     args = dict(cfg["score"])
     args.update({name: value for name, value in flags.items() if value is not None})
+    check_score(**args)   # before any use of them (a chunk of 0 sizes a progress bar)
     return args

@@ -144,3 +144,30 @@ class EpochProgress:
         if self.progress is not None:
             self.progress.__exit__(*exc)
         return False
+
+
+class CountProgress:
+    """A progress bar over a count (items scored, say), shown only when stderr is a terminal
+    and there is more than one step: silent when piped or with ``--quiet``."""
+
+    def __init__(self, total: int, label: str, steps: int = 2, quiet: bool = False):
+        self.enabled = not quiet and steps > 1 and sys.stderr.isatty()
+        self.total, self.label, self.progress = total, label, None
+
+    def __enter__(self):
+        if self.enabled:
+            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+            self.progress = Progress(TextColumn(self.label), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+                                     console=Console(stderr=True), transient=True)
+            self.progress.__enter__()
+            self.task = self.progress.add_task("", total=self.total)
+        return self
+
+    def advance(self, n: int) -> None:
+        if self.progress is not None:
+            self.progress.update(self.task, advance=n)
+
+    def __exit__(self, *exc):
+        if self.progress is not None:
+            self.progress.__exit__(*exc)
+        return False

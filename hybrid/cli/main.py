@@ -19,6 +19,7 @@ from hybrid.cli.display import (
     ADDRESS_HELP,
     ENGINE_HELP,
     PARTITIONS_HELP,
+    CountProgress,
     EpochProgress,
     check_format,
     emit,
@@ -28,7 +29,7 @@ from hybrid.cli.display import (
     say,
     setting_help,
 )
-from hybrid.common.errors import InputError, did_you_mean_id
+from hybrid.common.errors import InputError, did_you_mean, did_you_mean_id
 from hybrid.estimator.model import HybridFactorModel
 from hybrid.io.outputs import check_model_output, check_output
 from hybrid.io.tables import read_attributes
@@ -106,7 +107,17 @@ def _summary(model) -> dict:
                                           if v >= 0.005) or "not recorded"}
 
 
-_SHOWN = ["item", "content_only", "expected_rating", "liked_share"]
+_SHOWN = ["item", "content_only", "expected_rating", "expected_low", "expected_high", "liked_share"]
+
+
+def _sorted(chunks, column: str):
+    """Every chunk's rows, highest ``column`` first (text A to Z): the rows of a whole file, which
+    are small beside the item x user blocks that the chunks bound."""
+    rows = pd.concat(list(chunks), ignore_index=True)
+    if column not in rows.columns:
+        raise InputError(f"--sort: no output column '{column}'{did_you_mean(column, list(rows.columns))}")
+    numeric = pd.api.types.is_numeric_dtype(rows[column])
+    yield rows.sort_values(column, ascending=not numeric, kind="stable")
 
 
 @app.command()
@@ -117,17 +128,24 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
           config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
           liked: Optional[float] = typer.Option(None, "--liked", help=setting_help("score", "liked")),
           audience: Optional[int] = typer.Option(None, "--audience", help=setting_help("score", "audience")),
+          audience_by: Optional[str] = typer.Option(None, "--audience-by",
+                                                    help=setting_help("score", "audience_by")),
           neighbours: Optional[int] = typer.Option(None, "--neighbours", help=setting_help("score", "neighbours")),
+          interval: Optional[float] = typer.Option(None, "--interval", help=setting_help("score", "interval")),
           chunk: Optional[int] = typer.Option(None, "--chunk", help=setting_help("score", "chunk")),
+          keep: Optional[str] = typer.Option(None, "--keep", help="Columns of the file to carry into the output, "
+                                             "comma-separated (default: its name-like columns, such as name)."),
+          sort: Optional[str] = typer.Option(None, "--sort", help="Output column to sort by, highest first."),
+          quiet: bool = typer.Option(False, "--quiet", help="No progress bar."),
           engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
           address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
           format: str = typer.Option("table", "--format", help="table, csv or json (the summary).")):
-    """Score items no one has rated: expected rating, liked share, audience, nearest items.
+    """Score items no one has rated: expected rating with its interval, reasons, audience, nearest items.
 
-    Example: hybrid score club.hybrid new_lots.csv --out scored.csv
+    Example: hybrid score club.hybrid new_lots.csv --out scored.csv --sort expected_rating
     """
     from hybrid.engines.cluster import engine_client
-    from hybrid.estimator.batch import score_items, write_scores
+    from hybrid.estimator.batch import name_like, score_items, write_scores
 
     check_format(format)
     check_output(out)
@@ -135,20 +153,25 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
     cfg = settings_for(model, config)
     where = with_engine(load_config(config), engine, address)  # where to run is not the model's
     attrs = read_attributes(new_items, cfg, model.features_.spec(), require_all=False)
+    kept = name_like(attrs.columns) if keep is None else [c.strip() for c in keep.split(",") if c.strip()]
     seen = {"best": pd.DataFrame(), "edited": 0}
+    args = score_arguments(cfg, liked=liked, audience=audience, audience_by=audience_by, neighbours=neighbours,
+                           interval=interval, chunk=chunk)
 
-    def watch(gen):
+    def watch(gen, bar):
         # the ten best of the whole file, and the rated items whose row differs from the
         # attributes they were fitted with, kept as the chunks stream past (one held at a time)
         for df in gen:
-            seen["best"] = pd.concat([seen["best"], df[_SHOWN + ["nearest"]]]).nlargest(10, "expected_rating")
+            shown = [c for c in ["item", *kept, *_SHOWN[1:], "nearest"] if c in df.columns]
+            seen["best"] = pd.concat([seen["best"], df[shown]]).nlargest(10, "expected_rating")
             seen["edited"] += int((df["attributes_changed"] & ~df["content_only"]).sum())
+            bar.advance(len(df))
             yield df
 
-    with engine_client(where) as client:
-        args = score_arguments(cfg, liked=liked, audience=audience, neighbours=neighbours, chunk=chunk)
-        chunks = score_items(model, attrs, **args, client=client)
-        n = write_scores(watch(chunks), out)
+    with engine_client(where) as client, CountProgress(len(attrs), "items scored", -(-len(attrs) // args["chunk"]),
+                                                       quiet) as bar:
+        chunks = watch(score_items(model, attrs, **args, keep=kept, client=client), bar)
+        n = write_scores(chunks if sort is None else _sorted(chunks, sort), out, reasons=args["reasons"])
     if seen["edited"]:
         note(f"{seen['edited']} item(s) have ratings in the model and attributes in the file that differ from those "
              "it was fitted with: they are scored from their fitted vectors (column attributes_changed); "
@@ -156,7 +179,56 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
     top = seen["best"]
     if len(top):
         top = top.assign(nearest=[v[0][0] if v else "" for v in top["nearest"]])
-        emit(top, format, f"{n} items scored into {out}; the {len(top)} with the highest expected rating")
+        emit(top, format, f"{n} items scored into {out}; the {len(top)} with the highest expected rating "
+                          f"(expected_low to expected_high: the {args['interval']:.0%} interval; estimates)")
+
+
+def _describing(model, item: str, new_items: Optional[Path]):
+    """The attribute table of ``--new-items`` (or None), once ``item`` is known to be in the model or in it."""
+    attrs = None
+    if new_items is not None:
+        attrs = read_attributes(new_items, settings_for(model, None), model.features_.spec(), require_all=False)
+    if item not in set(model.item_ids_) and (attrs is None or item not in set(attrs.index)):
+        raise InputError(f"item '{item}' is not in the model{did_you_mean_id(item, model.item_ids_)}"
+                         + ("" if attrs is not None else "; describe a new item with --new-items FILE"))
+    return attrs
+
+
+@app.command()
+@guarded
+def why(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
+        item: str = typer.Argument(..., help="Item id."),
+        new_items: Optional[Path] = typer.Option(None, "--new-items",
+                                                 help="Attribute table describing ITEM (its row is the truth for "
+                                                      "an item without ratings)."),
+        top: int = typer.Option(10, "--top", help="How many attribute effects to list (0: all)."),
+        format: str = typer.Option("table", "--format", help="table, csv or json.")):
+    """Why an item's expected rating is what it is: the effect of each attribute, and how far its
+    ratings moved it.
+
+    Example: hybrid why club.hybrid L0601 --new-items new_lots.csv
+    """
+    from hybrid.estimator.explain import intervals, reasons
+
+    check_format(format)
+    model = HybridFactorModel.load(model_file)
+    attrs = _describing(model, item, new_items)
+    if top < 0:
+        raise InputError(f"--top must be a whole number >= 0, found {top}")
+    why_ = reasons(model, [item], attrs)
+    iv = intervals(model, [item], attrs).iloc[0]
+    rows = [("baseline (an item with none of these attributes)", why_.baseline[0])]
+    rows += [(name, effect) for name, effect in why_.top(0, top or None)]
+    shown = sum(e for _, e in rows[1:])
+    rest = why_.rating[0] - why_.baseline[0] - why_.moved[0] - shown
+    if abs(rest) > 5e-7:
+        rows.append(("the other attributes together", rest))
+    if why_.moved[0] != 0:
+        rows.append(("moved by its ratings (from its projection)", why_.moved[0]))
+    rows.append(("= the mean user's expected rating", why_.rating[0]))
+    table = pd.DataFrame(rows, columns=["part", "effect"])
+    emit(table, format, f"why {item} scores {why_.rating[0]:.2f} (80% interval {iv['low']:.2f} to "
+                        f"{iv['high']:.2f}); effects on the rating scale, estimates")
 
 
 @app.command()
@@ -174,13 +246,7 @@ def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
     """
     check_format(format)
     model = HybridFactorModel.load(model_file)
-    attrs = None
-    if new_items is not None:
-        cfg = settings_for(model, None)
-        attrs = read_attributes(new_items, cfg, model.features_.spec(), require_all=False)
-    if item not in set(model.item_ids_) and (attrs is None or item not in set(attrs.index)):
-        raise InputError(f"item '{item}' is not in the model{did_you_mean_id(item, model.item_ids_)}"
-                         + ("" if attrs is not None else "; describe a new item with --new-items FILE"))
+    attrs = _describing(model, item, new_items)
     emit(model.related([item], k=k, metric=metric, attributes=attrs), format, f"items nearest to {item} ({metric})")
 
 

@@ -145,6 +145,12 @@ SETTINGS = {
         "chunk": S(2000, _whole(1), "items scored at a time (bounds memory)"),
         "clip_numbers": S(True, ((lambda v: isinstance(v, bool)), "true or false"),
                           "hold new items' numbers to the range seen in training before projecting"),
+        "audience_by": S("taste", _one_of("taste", "rating"),
+                         'rank the audience by "taste" (how much more a user is expected to like the item\n'
+                         'than the average rated item) or by "rating" (expected rating)'),
+        "interval": S(0.8, _real(lambda v: 0 < v < 1, "a fraction in (0, 1)"),
+                      "the level of each item's interval of its expected rating"),
+        "reasons": S(3, _whole(0), "attribute effects listed per item in CSV and Parquet (JSON lists all)"),
     },
     "plan": {
         "target": S(0.8, _real(lambda v: 0 < v <= 1, "a fraction in (0, 1]"),

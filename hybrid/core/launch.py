@@ -71,18 +71,30 @@ def loo_projections(A_rated, Z_rated, weight, lam_map, P):
     return out
 
 
-def launch_offset(users, items, ratings, mu, F, A, weight, lam_map):
-    """The mean error, over every rating, of predictions from left-out projections.
+# items with at least this many ratings estimate the spread: their averages are well determined,
+# so the rating noise subtracted from each squared error is small beside it
+SPREAD_MIN_RATINGS = 20
+
+
+def launch_offset(users, items, ratings, mu, F, A, weight, lam_map, noise=None):
+    """The mean error, over every rating, of predictions from left-out projections; with
+    ``noise`` (the variance of one rating), also the spread of an item's average error.
 
     ``users``, ``items``, ``ratings`` are the fit's codes and values; ``F``
     the fitted :class:`~hybrid.core.train.Factors` (with biases); ``A`` the
     attribute matrix of every item; ``weight`` the items' prior weights.
+
+    The spread is the variance of an item's average rating around its launch score beyond the
+    noise of its ratings: over the items with at least :data:`SPREAD_MIN_RATINGS` ratings,
+    the mean of ``e_i^2 - noise / n_i``, ``e_i`` the mean error of item ``i``'s ratings less the
+    offset (method of moments; ``E e_i^2 = tau^2 + noise / n_i`` for independent errors).  Returns
+    ``offset``, or ``(offset, spread)`` with ``noise`` (spread NaN with too few such items).
     """
     n_items = F.item.shape[0]
     counts = np.bincount(items, minlength=n_items)
     rated = np.flatnonzero(counts > 0)
     if not len(rated) or not F.biases:
-        return 0.0
+        return 0.0 if noise is None else (0.0, float("nan"))
     Z = loo_projections(A[rated], F.item[rated], np.asarray(weight)[rated], lam_map, F.P)
     # sum over an item's ratings of r - mu - b_u - b_i - theta_u . x_i, for the
     # left-out block [b_i, x_i]: per item, its ratings' sums against the raters'
@@ -91,4 +103,12 @@ def launch_offset(users, items, ratings, mu, F, A, weight, lam_map):
     raters = np.asarray(R @ F.user)                          # sum of [b_u, theta_u] per item
     own = np.bincount(items, weights=ratings - mu, minlength=n_items)[rated]
     miss = own - raters[:, 0] - counts[rated] * Z[:, 0] - np.einsum("ij,ij->i", raters[:, 1:], Z[:, 1:])
-    return float(miss.sum() / counts.sum())
+    offset = float(miss.sum() / counts.sum())
+    if noise is None:
+        return offset
+    n = counts[rated]
+    well = n >= SPREAD_MIN_RATINGS
+    if well.sum() < 10:
+        return offset, float("nan")
+    e = miss[well] / n[well] - offset
+    return offset, float(max(np.mean(e ** 2 - noise / n[well]), 0.0))

@@ -34,7 +34,7 @@ from hybrid.io.tables import (
 # from them by ``set_fitted``, which is the only code that writes any of them
 FITTED = ("features_", "user_ids_", "item_ids_", "item_table_", "attributes_", "ratings_", "factors_", "mu_",
           "sigma2_", "sigma2_new_", "prior_weight_", "lam_user_", "lam_item_", "lam_map_", "penalty_path_",
-          "rank_", "rank_path_", "launched_", "launch_offset_", "metrics_", "extras_", "settings_")
+          "rank_", "rank_path_", "launched_", "launch_offset_", "launch_spread_", "metrics_", "extras_", "settings_")
 _D = {name: setting.default for name, setting in ESTIMATOR.items()}   # the defaults, from the one table
 _EMPTY = {"item_table_": lambda: None, "extras_": dict, "settings_": lambda: None}
 
@@ -142,6 +142,10 @@ class HybridFactorModel(Scores, FittedViews, BaseEstimator):
         The item prior around the attribute projection.
     launch_offset_ : float
         Added to the bias of items that had no ratings at the fit; ``launched_`` marks them.
+    launch_spread_ : float
+        The variance of a new item's average rating around its launch score, beyond the noise
+        of its ratings, measured out of sample (:func:`hybrid.core.launch.launch_offset`; NaN
+        when not measured): the width of the scores' intervals.
     item_counts_, user_counts_ : ndarray of int
         Ratings per item and per user; ``rating_range_`` the lowest and highest rating.
     history_ : list of dict
@@ -284,6 +288,7 @@ class HybridFactorModel(Scores, FittedViews, BaseEstimator):
             "lam_item": self.lam_item_, "lam_map": self.lam_map_,
             "penalty_path": [[p, e] for p, e in self.penalty_path_],
             "variance_scales": list(F.scales), "launch_offset": self.launch_offset_,
+            "launch_spread": self.launch_spread_,
             "seconds": time.perf_counter() - t0, "stage_seconds": stages, "engine": engine.provenance()})
         return self
 
@@ -354,11 +359,12 @@ class HybridFactorModel(Scores, FittedViews, BaseEstimator):
         """Measure the launch offset and move the unrated items' bias by it (their
         blocks are their prior means)."""
         launched = self.item_counts_ == 0
-        offset = 0.0
+        offset, spread = 0.0, float("nan")
         if self.launch_offset == "learned":
             u, i, r = self.ratings_
-            offset = launch_offset(u, i, r, self.mu_, self.factors_, self.attributes_, weight, self.lam_map_)
-        self.set_fitted(launched_=launched, launch_offset_=offset)
+            offset, spread = launch_offset(u, i, r, self.mu_, self.factors_, self.attributes_, weight, self.lam_map_,
+                                           noise=self.sigma2_new_)
+        self.set_fitted(launched_=launched, launch_offset_=offset, launch_spread_=spread)
         self.factors_.item[:, 0] += self.prior_shift()
         return {"factors_": self.factors_}
 

@@ -43,6 +43,7 @@ def save_model(model, path) -> None:
         "features": model.features_.get_state(), "metrics": model.metrics_,
         "history": model.history_, "mu": model.mu_, "sigma2": model.sigma2_,
         "sigma2_new": model.sigma2_new_, "launch_offset": model.launch_offset_,
+        "launch_spread": model.launch_spread_,
         "biases": model.factors_.biases,
         "table_columns": [] if table is None else [str(c) for c in table.columns],
     }
@@ -108,5 +109,7 @@ def model_from_file(manifest: dict, a: dict, cls):
         **{name + "_": float(metrics.get(name, params[name])) for name in ("lam_user", "lam_item", "lam_map")},
         penalty_path_=[tuple(p) for p in metrics.get("penalty_path", [])],
         launched_=launched, launch_offset_=offset, metrics_=metrics,
+        # files before the scores had intervals did not measure the spread
+        launch_spread_=float(manifest.get("launch_spread", float("nan"))),
         rank_=int(metrics.get("rank", model.rank)), rank_path_=[tuple(p) for p in metrics.get("rank_path", [])],
         extras_={k[len("extra_"):]: v for k, v in a.items() if k.startswith("extra_")})
