@@ -35,6 +35,7 @@ BITS = ("model_fingerprint",)   # a hash of the model's bits: another BLAS, anot
 # number's training range (the fitted scalars).  Then, on purpose, the scores file's audience is
 # ranked by taste (lift) and gained the name, interval, reasons and lift columns; the model's
 # metrics record the launch spread.  Every model array, the plan and the asks stayed as they were.
+# Then the report's new-items table shows names, intervals, reasons and the audience, and sorts.
 EXPECTED = {
     'ratings.csv': 'cfd306c4eb1216b163d8369e9f87ea138337037a988197fe6fbd6ef8406e57ae',
     'lots.csv': 'bdfb0cb20b202edcea46229d9edefd90a40dd3bb2e0fb5718a06c33c7bfaf097',
@@ -122,7 +123,7 @@ EXPECTED = {
     'week1.csv member': '1c36d8d5207585554a9176fea4346cf6266f9397773a50a5c363d9da8be77679',
     'week1.csv lot': '681a3643d466e21c1476412df624344dec8fd57b27a99d5e23f8bd88e1d4023a',
     'week1.csv score': '129:3.725252e+01:10.724108:37.252517:0.153224',
-    'report.html': '1ec13251803d99c8ff39dfdca4f54a8b7e6789de061e77acf0cd2f81afa99633',
+    'report.html': '7f0700efa5843243d73f186f41422f7341f569f76feac17f7cbd140fb5439529',
     'model array user_ids': 'e4614767415322ceb427e71e576c18f263cb56e57405f5182e9bd1c85809ec56',
     'model array item_ids': 'c8c6e6a6ce558a68207992665e72539d79f1bd623bdb098b941ea642f2b21b8d',
     'model array user_blocks': '17586:1.735272e+01:0.159888:17.352715:0.028540',

@@ -74,3 +74,19 @@ def test_readme_library_example_runs(tmp_path, monkeypatch):
     assert scope["vectors"].shape == (40, 6) and scope["scores"].shape == (1,)
     assert (scope["same"].item_blocks_ == scope["model"].item_blocks_).all()
     assert set(scope["plan"].items["status"]) <= {"no ratings yet", "under-covered", "trusted"}
+
+
+def test_every_column_score_and_plan_write_is_described(fitted, club):
+    # every column of the scores (flat and JSON), the plan and the asks stands in the README in
+    # backticks; numbered columns as user_N, neighbour_N, reason_N
+    import pandas as pd
+
+    from hybrid import plan
+    from hybrid.estimator.batch import flat_columns, score_items
+
+    rows = pd.concat(score_items(fitted, club.new_lots, audience=2, neighbours=2))
+    p = plan(fitted, budget=20, draws=16)
+    columns = set(flat_columns(rows).columns) | set(rows.columns) | set(p.items.columns) | set(p.asks.columns)
+    documented = set(re.findall(r"`([a-z_N0-9]+)`", README))
+    missing = sorted(c for c in columns if re.sub(r"_\d+(?=_|$)", "_N", c) not in documented)
+    assert not missing, missing

@@ -4,6 +4,7 @@ import shutil
 import subprocess
 from html.parser import HTMLParser
 
+import pandas as pd
 import pytest
 
 from hybrid import HybridFactorModel
@@ -107,3 +108,44 @@ def test_status_by_a_column_typo_refused_numbers_binned():
     assert counts.sum() == 60 and counts.drop("(none)").between(10, 14).all()
     page = build_report(m, items, k=5, draws=16, by="price")
     assert page.count("status-by") == 1 and " to " in page.split("Status by price")[1][:2000]
+
+
+def _new_items_table(text: str) -> pd.DataFrame:
+    """The new-items table of a page, read with regular expressions (no HTML parser package)."""
+    block = re.search(r'<table[^>]*new-items.*?</table>', text, re.S).group(0)
+    heads = re.findall(r"<th(?:\s[^>]*)?>(.*?)</th>", block, re.S)
+    rows = [re.findall(r"<td[^>]*>(.*?)</td>", r, re.S) for r in re.findall(r"<tr[^>]*>(.*?)</tr>", block, re.S)]
+    table = pd.DataFrame([r for r in rows if r], columns=heads)
+    return table.assign(**{"expected rating": table["expected rating"].astype(float)})
+
+
+def test_new_items_show_name_interval_reasons_and_audience(page):
+    text, p = page
+    table = _new_items_table(text)
+    assert list(table.columns) == ["item", "name", "expected rating", "80% interval", "main reasons",
+                                   "audience (users)", "nearest existing items"]
+    assert len(table) == int((p.items["ratings"] == 0).sum())
+    ends = table["80% interval"].str.split(" to ", expand=True).astype(float)
+    assert ((ends[0] <= table["expected rating"] + 5e-3) & (table["expected rating"] <= ends[1] + 5e-3)).all()
+    assert table["main reasons"].str.contains(r" [+-]\d\.\d\d").all()
+    assert table["name"].notna().all()
+
+
+def test_a_click_on_a_heading_sorts_the_table_in_a_real_browser(page, tmp_path):
+    # headless Chromium runs the page's own script; a script added after it clicks the heading of
+    # "expected rating" and the page's DOM is read back
+    browser = shutil.which("chromium") or shutil.which("chromium-browser")
+    if browser is None:
+        pytest.skip("Debian's chromium is not installed here (.ci/run installs it where it can)")
+    click = ('<script>var h = document.querySelectorAll("table.new-items thead th")[2]; h.click(); h.click();'
+             '</script></body>')
+    html_path = tmp_path / "clicked.html"
+    html_path.write_text(page[0].replace("</body>", click))
+    dom = subprocess.run([browser, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+                          "--disable-component-update", "--disable-sync", "--no-first-run",
+                          f"--user-data-dir={tmp_path / 'profile'}", "--dump-dom", html_path.as_uri()],
+                         check=True, capture_output=True, text=True, timeout=120).stdout
+    table = _new_items_table(dom)
+    shown = table["expected rating"].tolist()
+    assert shown == sorted(shown, reverse=True) and shown != sorted(shown)   # two clicks: highest first
+    assert 'aria-sort="descending"' in dom

@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 
 from hybrid.app.config import load_config
-from hybrid.datasets.club import DEMO_CONFIG, tasting_club, write_samples
+from hybrid.datasets.club import DEMO_CONFIG, tasting_club, write_sample_database, write_samples
 
 
 def run_demo(folder, seed: int = 7, say=print) -> dict:
@@ -25,6 +25,7 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
     folder = Path(folder)
     club = tasting_club(seed=seed)
     paths = write_samples(folder, club)
+    write_sample_database(folder / "club.db", paths)   # the same tables, as a shop's database holds them
     paths["config"] = folder / "coffee.toml"
     shutil.copyfile(DEMO_CONFIG, paths["config"])
     cfg = load_config(paths["config"])
@@ -59,7 +60,7 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
             f"most from {reason}), {row.liked_share:.0%} of members likely to give "
             f"{cfg['score']['liked']:g}+; nearest existing lots {near}")
     _campaign(model, new, cfg, folder, paths, say)
-    say(f"Files are in {folder}/ (ratings, lots, new lots, settings, model, scores, plan, asks, "
+    say(f"Files are in {folder}/ (ratings, lots, new lots and the same in club.db, settings, model, scores, plan, asks, "
         f"week1 answers to try `hybrid update`, report.html). "
         f"Done in {time.perf_counter() - t0:.1f} s.")
     return paths
@@ -91,7 +92,8 @@ def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):
     paths["report"] = folder / "report.html"
     with atomic_path(paths["report"]) as tmp:
         tmp.write_text(build_report(model, p.items, k=cfg["plan"]["k"], target=cfg["plan"]["target"],
-                                    liked=cfg["score"]["liked"]), encoding="utf-8")
+                                    liked=cfg["score"]["liked"], interval=cfg["score"]["interval"]),
+                       encoding="utf-8")
     s = p.summary()
     items = p.items
     say(f"Planner (top-{cfg['plan']['k']} neighbour lists, target stability {cfg['plan']['target']:g}): "

@@ -15,6 +15,9 @@ import pandas as pd
 from matplotlib.figure import Figure
 
 from hybrid.common.errors import InputError, did_you_mean
+from hybrid.core.neighbours import nearest
+from hybrid.estimator.batch import name_like
+from hybrid.estimator.explain import intervals, reasons
 from hybrid.planning.assess import STATUS, Assessor
 
 CAUTIONS = ("Ratings are personal data, and a sampling campaign contacts people: ask only customers "
@@ -52,6 +55,26 @@ def _svg(fig, title: str, alt: str) -> str:
 def _figure(fig, title, alt, caption):
     return (f'<figure data-title="{html.escape(title, quote=True)}">{_svg(fig, title, alt)}'
             f"<figcaption>{html.escape(caption)}</figcaption></figure>")
+
+
+# tables with the class "sortable" sort by a click on a heading (numbers as numbers, again to
+# reverse); plain JavaScript in the page, nothing fetched
+SORTING = """document.querySelectorAll("table.sortable").forEach(function (t) {
+  t.querySelectorAll("thead th").forEach(function (th, col) {
+    th.style.cursor = "pointer"; th.title = "Click to sort";
+    th.addEventListener("click", function () {
+      var body = t.tBodies[0], rows = Array.prototype.slice.call(body.rows);
+      var down = th.getAttribute("aria-sort") === "ascending";
+      t.querySelectorAll("thead th").forEach(function (h) { h.removeAttribute("aria-sort"); });
+      th.setAttribute("aria-sort", down ? "descending" : "ascending");
+      function key(r) { var v = r.cells[col].textContent.trim(), n = parseFloat(v);
+                        return isNaN(n) || !/^-?[0-9.]/.test(v) ? v.toLowerCase() : n; }
+      rows.sort(function (a, b) { var x = key(a), y = key(b), c = x < y ? -1 : x > y ? 1 : 0;
+                                  return down ? -c : c; });
+      rows.forEach(function (r) { body.appendChild(r); });
+    });
+  });
+});"""
 
 
 def _table(df: pd.DataFrame, cls="") -> str:
@@ -193,25 +216,40 @@ def training_section(model):
         f"{len(h)} epochs; final validation RMSE {model.metrics_.get('valid_rmse') or float('nan'):.4f}.")
 
 
-def new_items_section(model, items, liked, k=3):
+def new_items_section(model, items, liked, k=3, interval=0.8):
+    """The items without ratings: name, expected rating with its interval, the largest reasons,
+    the audience (users expected at ``liked`` or more) and the nearest rated items; a table the
+    reader sorts by clicking a column's heading."""
     new = items[items["ratings"] == 0]["item"].to_numpy(str)
     if not len(new):
         return "<h2>New items</h2><p>No items without ratings.</p>"
     off = 1 if model.biases else 0
     rated = np.flatnonzero(model.item_counts_ > 0)
-    from hybrid.core.neighbours import nearest
     z = model.blocks_for_items(new)
     idx, dist = nearest(z[:, off:], model.item_blocks_[rated, off:], k)
-    audience = np.concatenate([(model.clip(b) >= liked).sum(1) for _, b in model.score_blocks(z, 512)])
-    table = pd.DataFrame({"item": new, "expected audience (users)": audience,
-                          "nearest existing items": [", ".join(f"{model.item_ids_[rated[j]]} ({d:.2f})"
-                                                                for j, d in zip(r, dd)) for r, dd in zip(idx, dist)]})
-    return (f"<h2>New items</h2><p>Expected audience: users whose expected rating is at least {liked:g}.</p>"
-            + _table(table, "new-items"))
+    blocks = [model.clip(b) for _, b in model.score_blocks(z, 512)]
+    why, iv = reasons(model, new), intervals(model, new, level=interval)
+    expected = np.concatenate([b.mean(1) for b in blocks])
+    shift = expected - iv["centre"].to_numpy()   # the interval is the mean user's, carried over
+    low, high = (np.clip(iv[end].to_numpy() + shift, *model.rating_range_) for end in ("low", "high"))
+    table = pd.DataFrame({"item": new})
+    names = name_like(model.item_table_.columns) if model.item_table_ is not None else []
+    for col in names[:1]:
+        table[col] = model.item_table_.loc[new, col].to_numpy()
+    table = table.assign(**{
+        "expected rating": expected, f"{interval:.0%} interval": [f"{a:.2f} to {b:.2f}" for a, b in zip(low, high)],
+        "main reasons": ["; ".join(f"{n} {e:+.2f}" for n, e in why.top(j, 3)) for j in range(len(new))],
+        "audience (users)": np.concatenate([(b >= liked).sum(1) for b in blocks]),
+        "nearest existing items": [", ".join(f"{model.item_ids_[rated[j]]} ({d:.2f})" for j, d in zip(r, dd))
+                                   for r, dd in zip(idx, dist)]})
+    return (f"<h2>New items</h2><p>Expected ratings are estimates, with their {interval:.0%} interval; the main "
+            "reasons are the attributes that move the expected rating most (on the rating scale); the audience "
+            f"counts the users whose expected rating is at least {liked:g}. Click a column's heading to sort.</p>"
+            + _table(table, "new-items sortable"))
 
 
 def build_report(model, items: pd.DataFrame, *, k=10, target=0.8, draws=64, seed=0, by=None, liked=4.0,
-                 title="Catalogue coverage and sampling plan") -> str:
+                 interval=0.8, title="Catalogue coverage and sampling plan") -> str:
     """The whole HTML page for a model and a plan's item table (``Plan.items``).
 
     A plan's own target and k (its ``plan_*`` columns) win over ``target`` and ``k``, so the
@@ -231,8 +269,9 @@ def build_report(model, items: pd.DataFrame, *, k=10, target=0.8, draws=64, seed
             f'<p class="caution" role="note"><strong>Cautions.</strong> {html.escape(CAUTIONS)}</p>',
             f'<p class="plan-settings">{html.escape(stated)}</p>',
             coverage_section(model, items, by), needed_section(model, items, k, target, draws, seed),
-            map_section(model, items), training_section(model), new_items_section(model, items, liked),
+            map_section(model, items), training_section(model),
+            new_items_section(model, items, liked, interval=interval),
             f'<h2>Cautions</h2><p class="caution">{html.escape(CAUTIONS)}</p>']
     return ("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
             f"<title>{html.escape(title)}</title><style>{STYLE}</style></head><body>"
-            + "\n".join(body) + "</body></html>")
+            + "\n".join(body) + f"<script>{SORTING}</script></body></html>")

@@ -8,7 +8,7 @@ from hybrid.common.limits import check_score
 from hybrid.engines.cluster import engine_client
 from hybrid.engines.engine import Engine
 from hybrid.estimator.model import HybridFactorModel
-from hybrid.io.tables import check_items_described, read_attributes, read_ratings
+from hybrid.io.tables import read_training_tables
 
 # shown by every screen that plans or reports a campaign
 CAUTION = ("Ratings are personal data, and a campaign contacts people: ask only customers who agreed "
@@ -16,12 +16,10 @@ CAUTION = ("Ratings are personal data, and a campaign contacts people: ask only 
            "Every number here is an estimate.")
 
 
-def train_model(ratings: Path, attributes: Path, cfg: dict, on_epoch=None) -> HybridFactorModel:
+def train_model(ratings: str | Path, attributes: str | Path, cfg: dict, on_epoch=None) -> HybridFactorModel:
     """Read both tables, fit, and keep the settings in the model (``hybrid train`` and the demo)."""
     params = model_params(cfg)
-    table = read_ratings(ratings, cfg)
-    attrs = read_attributes(attributes, cfg, params["schema"])
-    check_items_described(table, attrs, source=str(ratings), row_base=2)
+    table, attrs = read_training_tables(ratings, attributes, cfg, params["schema"])
     with engine_client(cfg) as client:
         # a cluster started here serves the fit by its address
         engine = Engine.from_settings(cfg["engine"], client.scheduler.address if client is not None else None)

@@ -19,6 +19,10 @@ from hybrid.common.limits import SETTINGS
 
 FORMATS = ("table", "csv", "json")
 
+# what a table argument may be (files by ending; a database by URL, hybrid.io.database)
+TABLE_HELP = ": CSV, Parquet, or a database table or query (sqlite:///club.db#ratings)."
+
+
 def setting_help(section: str, name: str) -> str:
     """A flag's help: the setting's own help from the one table, what it allows, and where its
     default comes from."""

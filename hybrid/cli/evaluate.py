@@ -8,24 +8,22 @@ from typing import Optional
 import typer
 
 from hybrid.app.config import load_config, model_params
-from hybrid.cli.display import check_format, emit, say
+from hybrid.cli.display import TABLE_HELP, check_format, emit, say
 from hybrid.common.errors import InputError
 from hybrid.io.outputs import atomic_path, check_output
-from hybrid.io.tables import check_items_described, read_attributes, read_ratings
+from hybrid.io.tables import read_training_tables
 
 
 def _inputs(ratings, attributes, config):
     cfg = load_config(config)
     params = model_params(cfg)
-    table = read_ratings(ratings, cfg)
-    attrs = read_attributes(attributes, cfg, params["schema"])
-    check_items_described(table, attrs, source=str(ratings), row_base=2)
+    table, attrs = read_training_tables(ratings, attributes, cfg, params["schema"])
     return cfg, params, table, attrs
 
 
 def evaluate_command(
-        ratings: Path = typer.Argument(..., help="Ratings table."),
-        attributes: Path = typer.Argument(..., help="Item attribute table."),
+        ratings: str = typer.Argument(..., help="Ratings table" + TABLE_HELP),
+        attributes: str = typer.Argument(..., help="Item attribute table" + TABLE_HELP),
         config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
         protocol: str = typer.Option("cold", "--protocol", help="cold, warm or few."),
         folds: int = typer.Option(5, "--folds", help="Folds (mean and standard deviation are reported)."),
@@ -47,8 +45,8 @@ def evaluate_command(
 
 
 def tune_command(
-        ratings: Path = typer.Argument(..., help="Ratings table."),
-        attributes: Path = typer.Argument(..., help="Item attribute table."),
+        ratings: str = typer.Argument(..., help="Ratings table" + TABLE_HELP),
+        attributes: str = typer.Argument(..., help="Item attribute table" + TABLE_HELP),
         out: Path = typer.Option(..., "--out", help="Config file to write with the best settings."),
         config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
         trials: int = typer.Option(30, "--trials", help="Random settings to try."),

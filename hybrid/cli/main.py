@@ -19,6 +19,7 @@ from hybrid.cli.display import (
     ADDRESS_HELP,
     ENGINE_HELP,
     PARTITIONS_HELP,
+    TABLE_HELP,
     CountProgress,
     EpochProgress,
     check_format,
@@ -32,7 +33,7 @@ from hybrid.cli.display import (
 from hybrid.common.errors import InputError, did_you_mean, did_you_mean_id
 from hybrid.estimator.model import HybridFactorModel
 from hybrid.io.outputs import check_model_output, check_output
-from hybrid.io.tables import read_attributes
+from hybrid.io.tables import read_attributes, source_name
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, rich_markup_mode=None,
                   help="Score new, unrated catalogue items from their attributes, and plan "
@@ -54,8 +55,8 @@ def _options(show_version: bool = typer.Option(False, "--version", callback=_sho
 
 @app.command()
 @guarded
-def train(ratings: Path = typer.Argument(..., help="Ratings table (CSV or Parquet)."),
-          attributes: Path = typer.Argument(..., help="Item attribute table, one row per item."),
+def train(ratings: str = typer.Argument(..., help="Ratings table" + TABLE_HELP),
+          attributes: str = typer.Argument(..., help="Item attribute table, one row per item" + TABLE_HELP),
           config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
           out: Path = typer.Option(..., "--out", help="Model file to write."),
           quiet: bool = typer.Option(False, "--quiet", help="No progress bar."),
@@ -123,8 +124,8 @@ def _sorted(chunks, column: str):
 @app.command()
 @guarded
 def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
-          new_items: Path = typer.Argument(..., help="Attribute table of items to score."),
-          out: Path = typer.Option(..., "--out", help="Output: .csv, .json, .jsonl or .parquet."),
+          new_items: str = typer.Argument(..., help="Attribute table of items to score" + TABLE_HELP),
+          out: str = typer.Option(..., "--out", help="Output: .csv, .json, .jsonl, .parquet, or a database table (URL#table)."),
           config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
           liked: Optional[float] = typer.Option(None, "--liked", help=setting_help("score", "liked")),
           audience: Optional[int] = typer.Option(None, "--audience", help=setting_help("score", "audience")),
@@ -179,7 +180,7 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
     top = seen["best"]
     if len(top):
         top = top.assign(nearest=[v[0][0] if v else "" for v in top["nearest"]])
-        emit(top, format, f"{n} items scored into {out}; the {len(top)} with the highest expected rating "
+        emit(top, format, f"{n} items scored into {source_name(out)}; the {len(top)} with the highest expected rating "
                           f"(expected_low to expected_high: the {args['interval']:.0%} interval; estimates)")
 
 
@@ -198,7 +199,7 @@ def _describing(model, item: str, new_items: Optional[Path]):
 @guarded
 def why(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
         item: str = typer.Argument(..., help="Item id."),
-        new_items: Optional[Path] = typer.Option(None, "--new-items",
+        new_items: Optional[str] = typer.Option(None, "--new-items",
                                                  help="Attribute table describing ITEM (its row is the truth for "
                                                       "an item without ratings)."),
         top: int = typer.Option(10, "--top", help="How many attribute effects to list (0: all)."),
@@ -237,7 +238,7 @@ def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
             item: str = typer.Argument(..., help="Item id."),
             k: int = typer.Option(5, "--k", help="How many neighbours."),
             metric: str = typer.Option("euclidean", "--metric", help="euclidean or cosine."),
-            new_items: Optional[Path] = typer.Option(None, "--new-items",
+            new_items: Optional[str] = typer.Option(None, "--new-items",
                                                      help="Attribute table describing ITEM if the model lacks it."),
             format: str = typer.Option("table", "--format", help="table, csv or json.")):
     """Nearest items by distance between item vectors (rated and projected alike).

@@ -11,6 +11,7 @@ from hybrid.app.workflows import CAUTION, plan_arguments
 from hybrid.cli.display import (
     ADDRESS_HELP,
     ENGINE_HELP,
+    TABLE_HELP,
     check_format,
     emit,
     emit_mapping,
@@ -21,7 +22,7 @@ from hybrid.common.errors import InputError
 from hybrid.estimator.model import HybridFactorModel
 from hybrid.estimator.updates import import_counts
 from hybrid.io.outputs import atomic_path, check_model_output, check_output, write_table
-from hybrid.io.tables import read_attributes, read_item_list, read_plan, read_ratings
+from hybrid.io.tables import read_attributes, read_item_list, read_plan, read_ratings, read_training_tables
 
 
 def plan_command(
@@ -35,8 +36,8 @@ def plan_command(
         per_item: Optional[int] = typer.Option(None, "--per-item", help=setting_help("plan", "per_item")),
         priority: Optional[str] = typer.Option(None, "--priority", help="Attribute column of item priority."),
         aim: Optional[str] = typer.Option(None, "--aim", help=setting_help("plan", "aim")),
-        new_items: Optional[Path] = typer.Option(None, "--new-items", help="Attribute table of unrated items to include."),
-        only: Optional[Path] = typer.Option(None, "--items", help="Plan only the items in this table's item column."),
+        new_items: Optional[str] = typer.Option(None, "--new-items", help="Attribute table of unrated items to include" + TABLE_HELP),
+        only: Optional[str] = typer.Option(None, "--items", help="Plan only the items in this table's item column" + TABLE_HELP),
         config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
         engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
         address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
@@ -80,9 +81,9 @@ def plan_command(
 
 def update_command(
         model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
-        new_ratings: Path = typer.Argument(..., help="New ratings (same columns as training)."),
+        new_ratings: str = typer.Argument(..., help="New ratings (same columns as training)" + TABLE_HELP),
         out: Path = typer.Option(..., "--out", help="Updated model file."),
-        new_items: Optional[Path] = typer.Option(None, "--new-items", help="Attributes of items new to the model."),
+        new_items: Optional[str] = typer.Option(None, "--new-items", help="Attributes of items new to the model" + TABLE_HELP),
         config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
         format: str = typer.Option("table", "--format", help="table, csv or json.")):
     """Fold new ratings into a model mid-campaign, re-solving only the items and users they touch.
@@ -112,8 +113,8 @@ def update_command(
 
 
 def calibrate_command(
-        ratings: Path = typer.Argument(..., help="Ratings table."),
-        attributes: Path = typer.Argument(..., help="Item attribute table."),
+        ratings: str = typer.Argument(..., help="Ratings table" + TABLE_HELP),
+        attributes: str = typer.Argument(..., help="Item attribute table" + TABLE_HELP),
         config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
         probes: int = typer.Option(120, "--probes", help="How many well-rated items to probe."),
         seed: int = typer.Option(0, "--seed", help="Seed of the probe draw."),
@@ -122,15 +123,12 @@ def calibrate_command(
 
     Example: hybrid calibrate ratings.csv lots.csv --config coffee.toml --probes 60
     """
-    from hybrid.io.tables import check_items_described
     from hybrid.planning.calibration import calibrate
 
     check_format(format)
     cfg = load_config(config)
     params = model_params(cfg)
-    table = read_ratings(ratings, cfg)
-    attrs = read_attributes(attributes, cfg, params["schema"])
-    check_items_described(table, attrs, source=str(ratings), row_base=2)
+    table, attrs = read_training_tables(ratings, attributes, cfg, params["schema"])
     params["holdout"] = 0.0
     result = calibrate(table, attrs, params, n_probe=probes, k=cfg["plan"]["k"], draws=cfg["plan"]["draws"],
                        seed=seed)
@@ -160,7 +158,7 @@ def report_command(
         raise InputError(f"the plan lists item '{sorted(unknown)[0]}', which the model does not know",
                          file=str(plan_file))
     page = build_report(model, items, k=p["k"], target=p["target"], draws=p["draws"], seed=p["seed"], by=by,
-                        liked=cfg["score"]["liked"])
+                        liked=cfg["score"]["liked"], interval=cfg["score"]["interval"])
     with atomic_path(out) as tmp:
         tmp.write_text(page, encoding="utf-8")
     say(f"report written to {out} ({len(page) / 1e6:.2f} MB)")

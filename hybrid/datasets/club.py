@@ -144,4 +144,20 @@ def write_samples(folder: str | Path, club: TastingClub | None = None) -> dict[s
     return paths
 
 
+def write_sample_database(path: str | Path, paths: dict[str, Path]) -> str:
+    """The same tables in an SQLite database (typed columns, as a shop's database would hold
+    them), replacing the file; returns its SQLAlchemy URL (add ``#ratings`` for a table)."""
+    import sqlalchemy
+
+    from hybrid.io.outputs import atomic_path
+
+    with atomic_path(path) as tmp:
+        engine = sqlalchemy.create_engine(f"sqlite:///{tmp}")
+        for name in ("ratings", "lots", "new_lots"):
+            table = pd.read_csv(paths[name], dtype={"member": str, "lot": str})
+            table.to_sql(name, engine, index=False, if_exists="replace")
+        engine.dispose()
+    return f"sqlite:///{path}"
+
+
 DEMO_CONFIG = Path(__file__).with_name("coffee.toml")  # the demo's settings, as configs/coffee.toml

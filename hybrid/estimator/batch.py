@@ -21,6 +21,7 @@ from hybrid.common.limits import check_score, defaults
 from hybrid.core.neighbours import nearest
 from hybrid.estimator.explain import intervals, reasons
 from hybrid.estimator.oddities import OddInputWarning, find_oddities
+from hybrid.io.database import is_database, write_database_table
 from hybrid.io.outputs import atomic_path, output_format
 
 _S = defaults("score")   # the defaults, from the one table
@@ -162,15 +163,15 @@ def _score_chunk(shared, part, known, notes):
     })
 
 
-def _flat(df: pd.DataFrame, n_reasons: int = _S["reasons"]) -> pd.DataFrame:
+def flat_columns(df: pd.DataFrame, n_reasons: int = _S["reasons"]) -> pd.DataFrame:
     """Wide columns: user_1, user_1_rating, user_1_lift, ..., neighbour_1, neighbour_1_distance, ...,
     reason_1, reason_1_effect, ... (the first ``n_reasons`` reasons)."""
     columns = {}
     for name, col, values in (("user", "audience", ("rating", "lift")), ("neighbour", "nearest", ("distance",)),
                               ("reason", "reasons", ("effect",))):
-        width = max((len(v) for v in df[col]), default=0)
-        if col == "reasons":
-            width = min(width, n_reasons)
+        # every chunk the same columns (a database table or a Parquet file takes one shape):
+        # the reasons' width is the setting, the others' the lists' own (the same in every row)
+        width = n_reasons if col == "reasons" else max((len(v) for v in df[col]), default=0)
         for j in range(width):
             columns[f"{name}_{j + 1}"] = [v[j][0] if j < len(v) else "" for v in df[col]]
             for m, value in enumerate(values, start=1):
@@ -206,11 +207,14 @@ def _append(writer, flat):
 
 
 def write_scores(chunks, path: str | Path, reasons: int = _S["reasons"]) -> int:
-    """Stream scored chunks by the file's ending (CSV, JSON, JSON Lines, Parquet); return rows.
+    """Stream scored chunks by the file's ending (CSV, JSON, JSON Lines, Parquet), or to a database
+    table (``URL#table``, the CSV's columns; :mod:`hybrid.io.database`); return rows.
 
-    CSV and Parquet get the wide columns of ``_flat``; JSON and JSON Lines keep the audience
+    CSV and Parquet get the wide columns of :func:`flat_columns`; JSON and JSON Lines keep the audience
     and the nearest items as lists.  One chunk is held at a time whatever the format.
     """
+    if is_database(path):
+        return write_database_table((flat_columns(df, reasons) for df in chunks), str(path))
     fmt = output_format(path)
     n, writer = 0, None
     binary = fmt == "parquet"
@@ -224,7 +228,7 @@ def write_scores(chunks, path: str | Path, reasons: int = _S["reasons"]) -> int:
                     fh.write(line + "\n" if fmt == "jsonl" else ("," if n else "") + "\n" + line)
                     n += 1
                 continue
-            flat = _flat(df, reasons)
+            flat = flat_columns(df, reasons)
             if fmt == "parquet":
                 writer = _parquet_chunk(fh, writer, flat)
             else:

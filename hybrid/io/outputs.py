@@ -13,6 +13,7 @@ from pathlib import Path
 import pandas as pd
 
 from hybrid.common.errors import InputError
+from hybrid.io.database import check_database_target, is_database
 
 # what each kind of output may be written as, by the file's ending (one place for the rule)
 ENDINGS = {
@@ -57,8 +58,11 @@ def output_format(path: str | Path, kind: str = "table") -> str:
     return endings[path.suffix.lower()]
 
 
-def check_output(path: str | Path, kind: str = "table") -> Path:
-    """:func:`check_writable` and :func:`output_format` in one: call before the work starts."""
+def check_output(path: str | Path, kind: str = "table"):
+    """:func:`check_writable` and :func:`output_format` in one: call before the work starts.
+    A table may also go to a database (``URL#table``, :mod:`hybrid.io.database`)."""
+    if kind == "table" and is_database(path):
+        return check_database_target(str(path))
     output_format(path, kind)
     return check_writable(path)
 

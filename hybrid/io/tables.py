@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 
 from hybrid.common.errors import InputError, did_you_mean_id
+from hybrid.io.database import Source, is_database, read_database_table
 
 _SNIFF = (";", "\t", "|", ",")
 
@@ -36,12 +37,13 @@ def _decode(raw: bytes, source: str, delimiter: str) -> str:
 
 def read_table(path: str | Path, required: list[str], *, delimiter: str = ",",
                text_columns: list[str] = ()) -> pd.DataFrame:
-    """Read a CSV or Parquet table with every column as text.
+    """Read a CSV or Parquet table, or a database table or query, with every column as text.
 
     Parameters
     ----------
     path : str or Path
-        ``.parquet`` / ``.pq`` files are read as Parquet, anything else as CSV.
+        ``.parquet`` / ``.pq`` files are read as Parquet, a database URL with a table or a
+        query after ``#`` from the database (:mod:`hybrid.io.database`), anything else as CSV.
     required : list of str
         Columns that must be present.
     delimiter : str
@@ -57,28 +59,47 @@ def read_table(path: str | Path, required: list[str], *, delimiter: str = ",",
     >>> read_table(p, ["user", "item", "rating"]).iloc[0].tolist()
     ['u1', 'i1', '4']
     """
-    path = Path(path)
+    if is_database(path):
+        df, source = read_database_table(str(path))
+        df = _as_text(df, source, text_columns)
+        delimiter = ","
+    else:
+        df, source = _read_file(Path(path), delimiter, text_columns), str(path)
+    df.columns = [str(c) for c in df.columns]
+    _check_columns(df, required, source, delimiter)
+    if len(df) == 0:
+        raise InputError("the file has a header but no rows" if not is_database(path) else "no rows", file=source)
+    return df
+
+
+def first_row(path) -> int:
+    """The number of a table's first row in errors: a CSV file's line (the header is line 1),
+    else 1 (Parquet, a database table or query)."""
+    if is_database(path):
+        return 1
+    return 1 if Path(path).suffix.lower() in (".parquet", ".pq") else 2
+
+
+def source_name(path) -> str:
+    """How errors name a table: its path, or a database's URL (password hidden) and table."""
+    return Source.parse(str(path)).shown if is_database(path) else str(path)
+
+
+def _read_file(path: Path, delimiter: str, text_columns) -> pd.DataFrame:
     source = str(path)
     if not path.is_file():
         raise InputError("file not found", file=source)
     if path.suffix.lower() in (".parquet", ".pq"):
-        df = _read_parquet(path, text_columns)
-    else:
-        raw = path.read_bytes()
-        if not raw.strip():
-            raise InputError("the file is empty; expected a header line and rows", file=source)
-        text = _decode(raw, source, delimiter)
-        try:
-            df = pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False,
-                             sep=delimiter, engine="c")
-        except pd.errors.ParserError as exc:
-            raise InputError(f"not a well-formed {delimiter!r}-separated table: {exc}".splitlines()[0],
-                             file=source) from None
-    df.columns = [str(c) for c in df.columns]
-    _check_columns(df, required, source, delimiter)
-    if len(df) == 0:
-        raise InputError("the file has a header but no rows", file=source)
-    return df
+        return _read_parquet(path, text_columns)
+    raw = path.read_bytes()
+    if not raw.strip():
+        raise InputError("the file is empty; expected a header line and rows", file=source)
+    text = _decode(raw, source, delimiter)
+    try:
+        return pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False, sep=delimiter, engine="c")
+    except pd.errors.ParserError as exc:
+        raise InputError(f"not a well-formed {delimiter!r}-separated table: {exc}".splitlines()[0],
+                         file=source) from None
 
 
 def _read_parquet(path: Path, text_columns) -> pd.DataFrame:
@@ -86,9 +107,15 @@ def _read_parquet(path: Path, text_columns) -> pd.DataFrame:
         df = pd.read_parquet(path)
     except Exception as exc:  # pyarrow raises several unrelated types
         raise InputError(f"not a readable Parquet file ({type(exc).__name__})", file=str(path)) from None
+    return _as_text(df, str(path), text_columns)
+
+
+def _as_text(df: pd.DataFrame, source: str, text_columns) -> pd.DataFrame:
+    """Typed columns (Parquet's, a database's) as the text a CSV file's cells would be; ids
+    must be text or whole numbers."""
     for col in df.columns:
         if col in text_columns:
-            df[col] = id_strings(df[col], str(path), col)
+            df[col] = id_strings(df[col], source, col)
         elif df[col].dtype != object:
             df[col] = df[col].astype(str).where(df[col].notna(), "")
         else:
@@ -223,9 +250,9 @@ def read_ratings(path: str | Path, cfg: dict) -> pd.DataFrame:
     r = cfg["ratings"]
     required = [r["user"], r["item"], r["rating"]] + ([r["timestamp"]] if r["timestamp"] else [])
     df = read_table(path, required, delimiter=r["delimiter"], text_columns=[r["user"], r["item"]])
-    row_base = 1 if Path(path).suffix.lower() in (".parquet", ".pq") else 2
+    row_base, source = first_row(path), source_name(path)
     return validate_ratings(df, r, scale=tuple(r["scale"]), duplicates=r["duplicates"],
-                            source=str(path), row_base=row_base)
+                            source=source, row_base=row_base)
 
 
 def validate_attributes(df: pd.DataFrame, id_column: str | None, schema: dict, *,
@@ -271,8 +298,8 @@ def read_attributes(path: str | Path, cfg: dict, schema: dict, *, require_all: b
     """Read an item attribute file according to the ``[attributes]`` settings."""
     a = cfg["attributes"]
     df = read_table(path, [a["id"]], delimiter=a["delimiter"], text_columns=[a["id"]])
-    row_base = 1 if Path(path).suffix.lower() in (".parquet", ".pq") else 2
-    return validate_attributes(df, a["id"], schema, source=str(path), row_base=row_base,
+    row_base, source = first_row(path), source_name(path)
+    return validate_attributes(df, a["id"], schema, source=source, row_base=row_base,
                                require_all=require_all)
 
 
@@ -280,15 +307,24 @@ def read_item_list(path: str | Path, cfg: dict, known) -> list:
     """The item ids in a table's item column (the ``[attributes]`` id), each known to the model."""
     a = cfg["attributes"]
     df = read_table(path, [a["id"]], delimiter=a["delimiter"], text_columns=[a["id"]])
-    row_base = 1 if Path(path).suffix.lower() in (".parquet", ".pq") else 2
-    ids = id_strings(df[a["id"]], str(path), a["id"], row_base)
+    row_base, source = first_row(path), source_name(path)
+    ids = id_strings(df[a["id"]], source, a["id"], row_base)
     unknown = np.flatnonzero(~ids.isin(known).to_numpy())
     if unknown.size:
         first = ids.iloc[unknown[0]]
         raise InputError(f"item '{first}' is not in the model{did_you_mean_id(first, known)}"
                          " (new items need --new-items)",
-                         file=str(path), row=int(unknown[0]) + row_base, column=a["id"])
+                         file=source, row=int(unknown[0]) + row_base, column=a["id"])
     return ids.tolist()
+
+
+def read_training_tables(ratings, attributes, cfg: dict, schema: dict) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The ratings and the attribute table a fit reads (files or database tables), every rated
+    item described (``train``, ``calibrate``, ``evaluate``, ``tune`` and the demo)."""
+    table = read_ratings(ratings, cfg)
+    attrs = read_attributes(attributes, cfg, schema)
+    check_items_described(table, attrs, source=source_name(ratings), row_base=first_row(ratings))
+    return table, attrs
 
 
 def check_items_described(ratings: pd.DataFrame, attributes: pd.DataFrame,
