@@ -90,3 +90,24 @@ def test_every_column_score_and_plan_write_is_described(fitted, club):
     documented = set(re.findall(r"`([a-z_N0-9]+)`", README))
     missing = sorted(c for c in columns if re.sub(r"_\d+(?=_|$)", "_N", c) not in documented)
     assert not missing, missing
+
+
+@pytest.mark.slow
+def test_every_example_in_help_runs(tmp_path):
+    # each command's "Example:" line, run as written inside the folder the demo writes
+    import typer.main
+
+    runner = CliRunner()
+    assert runner.invoke(app, ["demo", str(tmp_path)]).exit_code == 0
+    group = typer.main.get_command(app)
+    examples = [" ".join(e.split()) for cmd in group.commands.values()
+                for e in re.findall(r"Example: (.*?)(?:\n\n|$)", cmd.help or "", re.S)]
+    assert len(examples) == len(group.commands) - 1          # every command but `version`
+    old = os.getcwd()
+    os.chdir(tmp_path)
+    try:
+        for line in examples:
+            result = runner.invoke(app, shlex.split(line)[1:])
+            assert result.exit_code == 0, (line, result.output)
+    finally:
+        os.chdir(old)

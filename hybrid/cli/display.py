@@ -3,8 +3,11 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import io
 import json
+import shutil
 import sys
+import textwrap
 import warnings
 
 import numpy as np
@@ -13,11 +16,35 @@ import typer
 from rich.console import Console
 from rich.table import Table
 from sklearn.exceptions import ConvergenceWarning
+from typer.core import TyperArgument, TyperCommand
 
 from hybrid.common.errors import InputError
 from hybrid.common.limits import SETTINGS
 
 FORMATS = ("table", "csv", "json")
+
+class Command(TyperCommand):
+    """A command whose help reads as people write it: arguments in capitals without braces in
+    the usage line (``hybrid score [OPTIONS] MODEL NEW_ITEMS``), and its whole first sentence in
+    the list of commands rather than one cut at a width."""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        for param in self.params:
+            if isinstance(param, TyperArgument) and param.metavar is None:
+                param.metavar = param.name.upper()
+
+    def collect_usage_pieces(self, ctx):
+        pieces = [self.options_metavar] if self.options_metavar else []
+        for param in self.get_params(ctx):
+            if isinstance(param, TyperArgument):
+                pieces.append(param.metavar if param.required else f"[{param.metavar}]")
+        return pieces
+
+    def get_short_help_str(self, limit: int = 45) -> str:
+        first = (self.help or "").strip().split("\n\n")[0]
+        return " ".join(first.split())
+
 
 # what a table argument may be (files by ending; a database by URL, hybrid.io.database)
 TABLE_HELP = ": CSV, Parquet, or a database table or query (sqlite:///club.db#ratings)."
@@ -92,19 +119,111 @@ def _cell(v) -> str:
     return str(v)
 
 
+def decimals(values) -> int:
+    """Decimals for a column of numbers: none for whole numbers, else four significant digits of
+    the largest (at most four decimals), the same for every row.
+
+    >>> decimals([1.0, 12.0]), decimals([0.9797, 1.117]), decimals([3.61, 4.2]), decimals([722.5, 12345.6])
+    (0, 3, 3, 0)
+    """
+    x = np.asarray([v for v in values if v is not None and np.isfinite(v)], dtype=float)
+    if not x.size or np.array_equal(x, np.round(x)):
+        return 0
+    top = float(np.abs(x).max())
+    return int(np.clip(3 - np.floor(np.log10(top)) if top > 0 else 4, 0, 4))
+
+
+def for_people(df: pd.DataFrame) -> pd.DataFrame:
+    """A table's cells as people read them: ``X_mean`` and ``X_sd`` as one ``mean ± sd`` cell,
+    numbers with one count of decimals per column, yes/no for flags, headers in words."""
+    out = {}
+    done = set()
+    for col in df.columns:
+        if col in done:
+            continue
+        values = df[col]
+        base = str(col)[:-5] if str(col).endswith("_mean") else None
+        if base is not None and f"{base}_sd" in df.columns and pd.api.types.is_numeric_dtype(values):
+            sd = df[f"{base}_sd"]
+            d = decimals(list(values) + list(sd))
+            out[_words(base)] = [("" if pd.isna(m) else f"{m:,.{d}f}" + ("" if pd.isna(e) else f" ± {e:,.{d}f}"))
+                                 for m, e in zip(values, sd)]
+            done.add(f"{base}_sd")
+        elif pd.api.types.is_bool_dtype(values):
+            out[_words(col)] = ["yes" if v else "no" for v in values]
+        elif pd.api.types.is_numeric_dtype(values):
+            d = decimals(values.astype(float))
+            out[_words(col)] = ["" if pd.isna(v) else f"{v:,.{d}f}" for v in values]
+        else:
+            out[_words(col)] = [_cell(v) for v in values]
+    return pd.DataFrame(out)
+
+
+_UPPER = {"rmse": "RMSE", "mae": "MAE", "ndcg10": "NDCG@10", "id": "id"}
+
+
+def _words(name) -> str:
+    """A field name as words for a heading: ``valid_rmse`` -> ``valid RMSE``."""
+    return " ".join(_UPPER.get(w.lower(), w) for w in str(name).replace("_", " ").split())
+
+
+def _is_number(text: str) -> bool:
+    return bool(text) and text.replace(",", "").replace(".", "").replace("-", "").replace(" ± ", "").isdigit()
+
+
+def _least_width(cells: pd.Series, heading: str, numeric: bool) -> int:
+    """A number column's widest cell; a text column's longest word, up to 12 (longer ones fold);
+    neither narrower than the longest word of its heading."""
+    words = [len(w) for w in heading.split()] or [1]
+    if numeric:
+        return max(max(len(v) for v in cells), *words)
+    return max(min(12, max((len(w) for v in cells for w in str(v).split()), default=1)), min(12, max(words)))
+
+
+def _width(table: Table, width: int) -> int:
+    """The widest line of ``table`` laid out for a terminal ``width`` wide, uncropped."""
+    probe = Console(width=width, file=io.StringIO(), soft_wrap=True, color_system=None)
+    probe.print(table)
+    return max((len(line) for line in probe.file.getvalue().splitlines()), default=0)
+
+
+def _table(shown: pd.DataFrame, columns: dict, title) -> Table:
+    """Number columns never wrap nor shrink below their widest cell; text columns fold."""
+    table = Table(title=title, title_justify="left", header_style="bold")
+    for col, (numeric, least) in columns.items():
+        table.add_column(col, justify="right" if numeric else "left", no_wrap=numeric, min_width=least,
+                         overflow="ellipsis" if numeric else "fold")
+    for row in shown.itertuples(index=False):
+        table.add_row(*row)
+    return table
+
+
 def emit(df: pd.DataFrame, fmt: str = "table", title: str | None = None) -> None:
-    """Write a table to stdout in the chosen format."""
+    """Write a table to stdout in the chosen format: field names and full precision for machines
+    (``csv``, ``json``); for people a table whose numbers are never cut (on a narrow terminal text
+    columns wrap first, then the last columns are left out, with a note)."""
     if fmt == "csv":
         df.to_csv(sys.stdout, index=False)
-    elif fmt == "json":
+        return
+    if fmt == "json":
         sys.stdout.write(df.to_json(orient="records", double_precision=10) + "\n")
-    else:
-        table = Table(title=title, title_justify="left", header_style="bold")
-        for col in df.columns:
-            table.add_column(str(col), justify="right" if pd.api.types.is_numeric_dtype(df[col]) else "left")
-        for row in df.itertuples(index=False):
-            table.add_row(*[_cell(v) for v in row])
-        Console(soft_wrap=False).print(table)
+        return
+    shown = for_people(df)
+    console = Console(soft_wrap=False)
+    numeric = {c: all(_is_number(v) or v == "" for v in shown[c]) and any(shown[c]) for c in shown.columns}
+    least = {c: _least_width(shown[c], c, numeric[c]) for c in shown.columns}
+    keep = list(shown.columns)
+    while True:   # leave out the last columns until the table, laid out, fits the terminal
+        columns = {c: (numeric[c], least[c]) for c in keep}
+        if len(keep) == 1 or _width(_table(shown[keep], columns, None), console.width) <= console.width:
+            break
+        keep.pop()
+    table = _table(shown[keep], columns, title)
+    console.print(table)
+    left = [c for c in shown.columns if c not in keep]
+    if left:
+        note(f"{len(left)} column(s) left out to fit {console.width} columns: {', '.join(left)} "
+             "(a wider terminal or --format csv shows them)")
 
 
 def emit_mapping(values: dict, fmt: str, title: str) -> None:
@@ -116,8 +235,12 @@ def emit_mapping(values: dict, fmt: str, title: str) -> None:
 
 
 def say(text: str = "") -> None:
-    """A line of the demo's story on stdout."""
-    typer.echo(text)
+    """A line of text for people on stdout, wrapped to the terminal (a line that starts with
+    spaces keeps them on every wrapped line)."""
+    width = shutil.get_terminal_size((80, 24)).columns
+    indent = text[:len(text) - len(text.lstrip(" "))]
+    typer.echo(textwrap.fill(text, width=max(width, 40), subsequent_indent=indent + "  " if indent else "",
+                             break_long_words=False, break_on_hyphens=False) if text else "")
 
 
 class EpochProgress:

@@ -32,7 +32,7 @@ def evaluate_command(
         format: str = typer.Option("table", "--format", help="table, csv or json.")):
     """Compare the hybrid with baselines (each tuned on its own) on held-out ratings.
 
-    Example: hybrid evaluate ratings.csv lots.csv --config coffee.toml --protocol cold --folds 5
+    Example: hybrid evaluate ratings.csv lots.csv --config coffee.toml --protocol cold --folds 3
     """
     from hybrid.evaluation.evaluate import PROTOCOLS, evaluate
 
@@ -56,7 +56,7 @@ def tune_command(
 
     Writes the settings file with the best values, ready for `hybrid train --config`.
 
-    Example: hybrid tune ratings.csv lots.csv --config coffee.toml --trials 30 --out best.toml
+    Example: hybrid tune ratings.csv lots.csv --config coffee.toml --trials 5 --out best.toml
     """
     import sys
 

@@ -20,6 +20,7 @@ from hybrid.cli.display import (
     ENGINE_HELP,
     PARTITIONS_HELP,
     TABLE_HELP,
+    Command,
     CountProgress,
     EpochProgress,
     check_format,
@@ -53,7 +54,7 @@ def _options(show_version: bool = typer.Option(False, "--version", callback=_sho
     each needs. Scores are estimates."""
 
 
-@app.command()
+@app.command(cls=Command)
 @guarded
 def train(ratings: str = typer.Argument(..., help="Ratings table" + TABLE_HELP),
           attributes: str = typer.Argument(..., help="Item attribute table, one row per item" + TABLE_HELP),
@@ -66,7 +67,7 @@ def train(ratings: str = typer.Argument(..., help="Ratings table" + TABLE_HELP),
           format: str = typer.Option("table", "--format", help="table, csv or json.")):
     """Fit the joint model and write a model file.
 
-    Example: hybrid train ratings.csv lots.csv --config configs/coffee.toml --out club.hybrid
+    Example: hybrid train ratings.csv lots.csv --config coffee.toml --out club.hybrid
     """
     check_format(format)
     check_model_output(out)
@@ -121,7 +122,7 @@ def _sorted(chunks, column: str):
     yield rows.sort_values(column, ascending=not numeric, kind="stable")
 
 
-@app.command()
+@app.command(cls=Command)
 @guarded
 def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
           new_items: str = typer.Argument(..., help="Attribute table of items to score" + TABLE_HELP),
@@ -195,7 +196,7 @@ def _describing(model, item: str, new_items: Optional[Path]):
     return attrs
 
 
-@app.command()
+@app.command(cls=Command)
 @guarded
 def why(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
         item: str = typer.Argument(..., help="Item id."),
@@ -232,7 +233,7 @@ def why(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file
                         f"{iv['high']:.2f}); effects on the rating scale, estimates")
 
 
-@app.command()
+@app.command(cls=Command)
 @guarded
 def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
             item: str = typer.Argument(..., help="Item id."),
@@ -251,7 +252,7 @@ def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
     emit(model.related([item], k=k, metric=metric, attributes=attrs), format, f"items nearest to {item} ({metric})")
 
 
-@app.command()
+@app.command(cls=Command)
 @guarded
 def inspect(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file."),
             format: str = typer.Option("table", "--format", help="table, csv or json.")):
@@ -270,7 +271,7 @@ def inspect(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
     emit_mapping(info, format, f"model {model_file}")
 
 
-@app.command()
+@app.command(cls=Command)
 @guarded
 def demo(folder: Path = typer.Argument(Path("demo-out"), help="Folder for the demo's files."),
          seed: int = typer.Option(7, "--seed", help="Seed of the invented tasting club.")):
@@ -292,18 +293,18 @@ from hybrid.cli.plan import (  # noqa: E402
     update_command,
 )
 
-app.command("plan")(guarded(plan_command))
-app.command("update")(guarded(update_command))
-app.command("calibrate")(guarded(calibrate_command))
-app.command("report")(guarded(report_command))
+app.command("plan", cls=Command)(guarded(plan_command))
+app.command("update", cls=Command)(guarded(update_command))
+app.command("calibrate", cls=Command)(guarded(calibrate_command))
+app.command("report", cls=Command)(guarded(report_command))
 
 from hybrid.cli.evaluate import evaluate_command, tune_command  # noqa: E402
 
-app.command("evaluate")(guarded(evaluate_command))
-app.command("tune")(guarded(tune_command))
+app.command("evaluate", cls=Command)(guarded(evaluate_command))
+app.command("tune", cls=Command)(guarded(tune_command))
 
 
-@app.command()
+@app.command(cls=Command)
 def version():
     """Print the version."""
     say(__version__)

@@ -1,0 +1,130 @@
+"""Screens for people: every command's table at 80 columns shows each number whole, and each
+number equals (to the decimals shown) the value the same command gives machines (--format json)."""
+import json
+import re
+
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+from hybrid.cli import app
+from hybrid.cli.display import decimals, for_people
+
+NUMBER = re.compile(r"^-?[\d,]*\.?\d+(?: ± [\d,]*\.?\d+)?$")
+
+
+def _cells(line: str) -> list[str]:
+    return [c.strip() for c in re.split(r"[│┃]", line)[1:-1]]
+
+
+def read_screen_table(text: str) -> dict[str, list[str]]:
+    """Heading -> the cells of its column, from a box-drawn table (headings may wrap; a text cell
+    may wrap onto more lines, whose number cells are then blank)."""
+    lines = text.splitlines()
+    head = [_cells(line) for line in lines if line.startswith("┃")]
+    body = [_cells(line) for line in lines if line.startswith("│")]
+    headings = [" ".join(part for part in parts if part) for parts in zip(*head)]
+    return {h: [row[j] for row in body] for j, h in enumerate(headings)}
+
+
+def _close(shown: str, value: float) -> bool:
+    d = len(shown.split(".")[1]) if "." in shown else 0
+    return abs(float(shown.replace(",", "")) - value) <= 0.5 * 10 ** -d + 1e-12 * abs(value)
+
+
+def check_numbers(screen: str, records: list[dict]) -> int:
+    """Every number column of the screen's table against the records' fields; returns how many
+    numbers were compared."""
+    table = read_screen_table(screen)
+    assert table, screen
+    fields = {f: f for f in records[0]}
+    compared = 0
+    for heading, cells in table.items():
+        numbers = [c for c in cells if c]
+        if not numbers or not all(NUMBER.match(c) for c in numbers):
+            continue
+        assert len(numbers) == len(records), (heading, numbers)    # one whole number per row
+        name = next((f for f in fields if for_people_heading(f) == heading), None)
+        mean = next((f[:-5] for f in fields if f.endswith("_mean") and for_people_heading(f[:-5]) == heading), None)
+        assert name or mean, (heading, list(fields))
+        for shown, rec in zip(numbers, records):
+            if mean:
+                m, s = shown.split(" ± ")
+                assert _close(m, rec[f"{mean}_mean"]) and _close(s, rec[f"{mean}_sd"]), (heading, shown, rec)
+            else:
+                assert _close(shown, rec[name]), (heading, shown, rec[name])
+            compared += 1
+    return compared
+
+
+def for_people_heading(field: str) -> str:
+    return list(for_people(pd.DataFrame({field: [1.5]})).columns)[0]
+
+
+def check_mapping(screen: str, values: dict) -> int:
+    table = read_screen_table(screen)
+    what, shown = table["what"], table["value"]
+    rows = {}
+    for w, v in zip(what, shown):     # a wrapped row continues on the next line with a blank 'what'
+        if w:
+            rows[w], last = v, w
+        else:
+            rows[last] += " " + v
+    compared = 0
+    for key, value in values.items():
+        if isinstance(value, (int, float)) and not isinstance(value, bool):
+            assert _close(rows[key], float(value)) or float(rows[key].replace(",", "")) == pytest.approx(value, rel=5e-4)
+            compared += 1
+    return compared
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("screens")
+    assert CliRunner().invoke(app, ["demo", str(folder)]).exit_code == 0
+    return folder
+
+
+def run(args, fmt):
+    done = CliRunner(env={"COLUMNS": "80"}).invoke(app, [*args, "--format", fmt])
+    assert done.exit_code == 0, done.output
+    return done.stdout
+
+
+TABLES = [
+    ["score", "{d}/club.hybrid", "{d}/new_lots.csv", "--out", "{d}/s.csv"],
+    ["related", "{d}/club.hybrid", "L0042", "--k", "5"],
+    ["why", "{d}/club.hybrid", "L0601"],
+    ["evaluate", "{d}/ratings.csv", "{d}/lots.csv", "--config", "{d}/coffee.toml", "--folds", "2"],
+    ["calibrate", "{d}/ratings.csv", "{d}/lots.csv", "--config", "{d}/coffee.toml", "--probes", "20"],
+    ["tune", "{d}/ratings.csv", "{d}/lots.csv", "--config", "{d}/coffee.toml", "--trials", "2", "--out", "{d}/b.toml"],
+]
+
+
+@pytest.mark.parametrize("args", TABLES, ids=[a[0] for a in TABLES])
+def test_every_number_on_an_80_column_screen_is_whole_and_true(demo, args):
+    args = [a.format(d=demo) for a in args]
+    screen = run(args, "table")
+    assert max(len(line) for line in screen.splitlines()) <= 80
+    assert "…" not in screen
+    records = json.loads(run(args, "json"))
+    assert check_numbers(screen, records) >= len(records)
+
+
+@pytest.mark.parametrize("args", [["inspect", "{d}/club.hybrid"],
+                                  ["plan", "{d}/club.hybrid", "--budget", "50", "--out", "{d}/p.csv"]],
+                         ids=["inspect", "plan"])
+def test_every_number_in_a_summary_is_true(demo, args):
+    args = [a.format(d=demo) for a in args]
+    screen = run(args, "table")
+    assert max(len(line) for line in screen.splitlines()) <= 80 and "…" not in screen
+    values = json.loads(run(args, "json"))
+    first = screen[screen.index("┏"):screen.index("└")]    # the summary: the first table
+    assert check_mapping(first, values) >= 5
+
+
+def test_a_column_keeps_one_count_of_decimals():
+    assert decimals([0.9797, 1.117, 0.779]) == 3
+    shown = for_people(pd.DataFrame({"rmse_mean": [1.117, 0.9797], "rmse_sd": [0.005, 0.0012], "n": [2, 10]}))
+    assert list(shown.columns) == ["RMSE", "n"]
+    assert shown["RMSE"].tolist() == ["1.117 ± 0.005", "0.980 ± 0.001"] and shown["n"].tolist() == ["2", "10"]
