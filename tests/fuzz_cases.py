@@ -9,6 +9,7 @@ traceback and no output file.  The files are a small invented tasting club
 """
 from __future__ import annotations
 
+import functools
 import re
 import shutil
 from dataclasses import dataclass, field
@@ -131,6 +132,29 @@ class Command:
     cheap: bool = True
 
 
+@functools.lru_cache(maxsize=64)
+def _pool_size(model_path: str, k: int) -> int:
+    from hybrid import load
+    from hybrid.planning.assess import Assessor
+
+    from hybrid.common.errors import InputError
+
+    model = load(model_path)
+    try:
+        return len(Assessor(model, k=k, draws=2, pool_min_ratings=model.settings_["plan"]["pool_min_ratings"]).pool)
+    except InputError:   # too few candidates for this k: the planner refuses it
+        return 0
+
+
+def _k_ok(model_path: str):
+    # a neighbour list of k needs more than k candidates; a catalogue with few well-rated items
+    # takes its 4k most-rated ones (hybrid.planning.assess.Assessor), so the bound moves with k
+    def ok(text):
+        k = as_int(text)
+        return k is not None and 1 <= k <= 10 ** 6 and k < _pool_size(model_path, k)
+    return ok
+
+
 def commands(F: Files, out: Path) -> list[Command]:
     o = lambda ending: str(out / f"out{ending}")
     return [
@@ -152,7 +176,7 @@ def commands(F: Files, out: Path) -> list[Command]:
                 {1: "model", "--new-items": "new_lots"}, {}),
         Command("inspect", lambda: ["inspect", F["model"]], {"--format": _choice_ok(*FORMATS)}, {1: "model"}, {}),
         Command("plan", lambda: ["plan", F["model"], "--out", o(".csv"), "--budget", "20"],
-                {"--target": _float_ok(lambda v: 0 < v <= 1), "--k": _int_ok(1, 20), "--budget": _int_ok(0),
+                {"--target": _float_ok(lambda v: 0 < v <= 1), "--k": _k_ok(str(F["model"])), "--budget": _int_ok(0),
                  "--per-user": _int_ok(1), "--per-item": _int_ok(1),
                  "--priority": _choice_ok("margin", "price", "altitude_m"), "--aim": _choice_ok("reach", "gain"),
                  "--engine": _choice_ok(*ENGINES), "--format": _choice_ok(*FORMATS)},

@@ -128,3 +128,41 @@ def test_a_column_keeps_one_count_of_decimals():
     shown = for_people(pd.DataFrame({"rmse_mean": [1.117, 0.9797], "rmse_sd": [0.005, 0.0012], "n": [2, 10]}))
     assert list(shown.columns) == ["RMSE", "n"]
     assert shown["RMSE"].tolist() == ["1.117 ± 0.005", "0.980 ± 0.001"] and shown["n"].tolist() == ["2", "10"]
+
+
+@pytest.mark.parametrize("args", [
+    ["plan", "{d}/club.hybrid", "--budget", "20", "--out", "{d}/p2.csv"],
+    ["report", "{d}/club.hybrid", "--out", "{d}/r.html"],
+    ["calibrate", "{d}/ratings.csv", "{d}/lots.csv", "--config", "{d}/coffee.toml", "--probes", "20"],
+    ["score", "{d}/club.hybrid", "{d}/new_lots.csv", "--out", "{d}/s2.csv", "--chunk", "5"],
+], ids=["plan", "report", "calibrate", "score"])
+def test_piped_output_carries_no_progress(demo, args):
+    done = CliRunner().invoke(app, [a.format(d=demo) for a in args])
+    assert done.exit_code == 0, done.output
+    assert not re.search(r"[⠀-⣿]|\d+/\d+|\d:\d\d:\d\d", done.stderr), done.stderr   # no spinner, count or clock
+
+
+def test_progress_shows_on_a_terminal_only(monkeypatch):
+    import sys
+
+    from hybrid.cli.display import CountProgress
+
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True, raising=False)
+    assert CountProgress(5, "x").enabled and not CountProgress(5, "x", quiet=True).enabled
+    assert not CountProgress(5, "x", steps=1).enabled            # one chunk: nothing to show
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: False, raising=False)
+    assert not CountProgress(None, "x").enabled
+
+
+def test_the_long_library_calls_report_their_steps(club):
+    from hybrid.evaluation.evaluate import evaluate
+    from hybrid.planning.calibration import calibrate
+
+    params = {"rank": 3, "epochs": 3, "schema": club.schema, "text_min_df": 1}
+    seen = []
+    evaluate(club.ratings, club.lots, params, folds=2, on_step=lambda *a: seen.append(a[:2]))
+    assert seen == [(0, 2), (1, 2), (2, 2)]
+    seen.clear()
+    calibrate(club.ratings, club.lots, params, ns=(0, 5), min_ratings=20, n_probe=10, draws=8,
+              on_step=lambda *a: seen.append(a[:2]))
+    assert seen == [(0, 3), (1, 3), (2, 3), (3, 3)]

@@ -274,21 +274,37 @@ class EpochProgress:
 
 
 class CountProgress:
-    """A progress bar over a count (items scored, say), shown only when stderr is a terminal
-    and there is more than one step: silent when piped or with ``--quiet``."""
+    """Progress on stderr, shown only when stderr is a terminal (silent when piped or with
+    ``--quiet``): a bar over a count (items scored, folds evaluated), or with ``total=None`` a
+    spinner and the time so far for work that has no count.  ``steps`` below 2 shows nothing
+    (a file of one chunk is done before a bar means anything)."""
 
-    def __init__(self, total: int, label: str, steps: int = 2, quiet: bool = False):
+    def __init__(self, total: int | None, label: str, steps: int = 2, quiet: bool = False):
         self.enabled = not quiet and steps > 1 and sys.stderr.isatty()
         self.total, self.label, self.progress = total, label, None
 
     def __enter__(self):
         if self.enabled:
-            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
-            self.progress = Progress(TextColumn(self.label), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+            from rich.progress import (
+                BarColumn,
+                MofNCompleteColumn,
+                Progress,
+                SpinnerColumn,
+                TextColumn,
+                TimeElapsedColumn,
+            )
+            counted = [BarColumn(), MofNCompleteColumn()] if self.total is not None else []
+            self.progress = Progress(SpinnerColumn(), TextColumn(self.label), *counted,
+                                     TextColumn("{task.description}"), TimeElapsedColumn(),
                                      console=Console(stderr=True), transient=True)
             self.progress.__enter__()
             self.task = self.progress.add_task("", total=self.total)
         return self
+
+    def step(self, done: int, total: int, what: str = "") -> None:
+        """A library callback's report: ``done`` of ``total`` steps, the one now under way."""
+        if self.progress is not None:
+            self.progress.update(self.task, completed=done, total=total, description=what)
 
     def advance(self, n: int) -> None:
         if self.progress is not None:

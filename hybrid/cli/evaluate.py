@@ -8,7 +8,7 @@ from typing import Optional
 import typer
 
 from hybrid.app.config import load_config, model_params
-from hybrid.cli.display import TABLE_HELP, check_format, emit, say
+from hybrid.cli.display import TABLE_HELP, CountProgress, check_format, emit, say
 from hybrid.common.errors import InputError
 from hybrid.io.outputs import atomic_path, check_output
 from hybrid.io.tables import read_training_tables
@@ -29,6 +29,7 @@ def evaluate_command(
         folds: int = typer.Option(5, "--folds", help="Folds (mean and standard deviation are reported)."),
         seed: int = typer.Option(0, "--seed", help="Seed of the folds."),
         min_ratings: int = typer.Option(5, "--min-ratings", help="cold/few: held-out items have at least this many ratings."),
+        quiet: bool = typer.Option(False, "--quiet", help="No progress display."),
         format: str = typer.Option("table", "--format", help="table, csv or json.")):
     """Compare the hybrid with baselines (each tuned on its own) on held-out ratings.
 
@@ -40,7 +41,9 @@ def evaluate_command(
     if protocol not in PROTOCOLS:
         raise InputError(f"--protocol must be one of {', '.join(PROTOCOLS)}, found {protocol!r}")
     _, params, table, attrs = _inputs(ratings, attributes, config)
-    result = evaluate(table, attrs, params, protocol=protocol, folds=folds, seed=seed, min_ratings=min_ratings)
+    with CountProgress(folds, "evaluating", quiet=quiet) as bar:
+        result = evaluate(table, attrs, params, protocol=protocol, folds=folds, seed=seed, min_ratings=min_ratings,
+                          on_step=bar.step)
     emit(result.round(4), format, f"{protocol} protocol, {folds} folds (mean and sd)")
 
 

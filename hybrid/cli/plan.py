@@ -12,6 +12,7 @@ from hybrid.cli.display import (
     ADDRESS_HELP,
     ENGINE_HELP,
     TABLE_HELP,
+    CountProgress,
     check_format,
     emit,
     emit_mapping,
@@ -41,6 +42,7 @@ def plan_command(
         config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
         engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
         address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
+        quiet: bool = typer.Option(False, "--quiet", help="No progress display."),
         format: str = typer.Option("table", "--format", help="table, csv or json (the summary).")):
     """Plan a sampling campaign: which items are under-covered, how many ratings each needs, whom to ask.
 
@@ -62,7 +64,9 @@ def plan_command(
     if new_items is not None:
         model.add_items(read_attributes(new_items, cfg, model.features_.spec(), require_all=False))
     chosen = None if only is None else read_item_list(only, cfg, model.item_ids_)
-    with engine_client(with_engine(load_config(config), engine, address)) as client:
+    with engine_client(with_engine(load_config(config), engine, address)) as client, \
+            CountProgress(None, f"planning {len(model.item_ids_) if chosen is None else len(chosen)} items",
+                          quiet=quiet):
         result = plan(model, **plan_arguments(cfg, target=target, k=k, aim=aim), budget=budget,
                       per_user=per_user, priority=priority, per_item=per_item, items=chosen, client=client)
     write_table(result.items, out)
@@ -118,6 +122,7 @@ def calibrate_command(
         config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
         probes: int = typer.Option(120, "--probes", help="How many well-rated items to probe."),
         seed: int = typer.Option(0, "--seed", help="Seed of the probe draw."),
+        quiet: bool = typer.Option(False, "--quiet", help="No progress display."),
         format: str = typer.Option("table", "--format", help="table, csv or json.")):
     """Check the planner's numbers: hide ratings of well-rated items and compare predicted with actual.
 
@@ -130,8 +135,9 @@ def calibrate_command(
     params = model_params(cfg)
     table, attrs = read_training_tables(ratings, attributes, cfg, params["schema"])
     params["holdout"] = 0.0
-    result = calibrate(table, attrs, params, n_probe=probes, k=cfg["plan"]["k"], draws=cfg["plan"]["draws"],
-                       seed=seed)
+    with CountProgress(0, "calibrating", quiet=quiet) as bar:
+        result = calibrate(table, attrs, params, n_probe=probes, k=cfg["plan"]["k"], draws=cfg["plan"]["draws"],
+                           seed=seed, on_step=bar.step)
     emit(result.round(4), format, "predicted against actual stability of probed items")
 
 
@@ -140,7 +146,8 @@ def report_command(
         out: Path = typer.Option(..., "--out", help="HTML file to write."),
         plan_file: Optional[Path] = typer.Option(None, "--plan", help="A plan from `hybrid plan` (else one is made)."),
         by: Optional[str] = typer.Option(None, "--by", help="Attribute column to count statuses by."),
-        config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's).")):
+        config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
+        quiet: bool = typer.Option(False, "--quiet", help="No progress display.")):
     """Write one self-contained HTML report with plots for the campaign meeting.
 
     Example: hybrid report club.hybrid --plan plan.csv --out report.html
@@ -152,13 +159,14 @@ def report_command(
     model = HybridFactorModel.load(model_file)
     cfg = settings_for(model, config)
     p = cfg["plan"]
-    items = read_plan(plan_file) if plan_file is not None else plan(model, **plan_arguments(cfg)).items
-    unknown = set(items["item"].astype(str)) - set(model.item_ids_)
-    if unknown:
-        raise InputError(f"the plan lists item '{sorted(unknown)[0]}', which the model does not know",
-                         file=str(plan_file))
-    page = build_report(model, items, k=p["k"], target=p["target"], draws=p["draws"], seed=p["seed"], by=by,
-                        liked=cfg["score"]["liked"], interval=cfg["score"]["interval"])
+    with CountProgress(None, "writing the report", quiet=quiet):
+        items = read_plan(plan_file) if plan_file is not None else plan(model, **plan_arguments(cfg)).items
+        unknown = set(items["item"].astype(str)) - set(model.item_ids_)
+        if unknown:
+            raise InputError(f"the plan lists item '{sorted(unknown)[0]}', which the model does not know",
+                             file=str(plan_file))
+        page = build_report(model, items, k=p["k"], target=p["target"], draws=p["draws"], seed=p["seed"], by=by,
+                            liked=cfg["score"]["liked"], interval=cfg["score"]["interval"])
     with atomic_path(out) as tmp:
         tmp.write_text(page, encoding="utf-8")
     say(f"report written to {out} ({len(page) / 1e6:.2f} MB)")

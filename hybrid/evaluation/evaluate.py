@@ -98,7 +98,7 @@ def _hybrid(ratings, attributes, params, train):
 
 
 def evaluate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, protocol: str = "cold",
-             folds: int = 5, seed: int = 0, min_ratings: int = 5, reveal=REVEAL) -> pd.DataFrame:
+             folds: int = 5, seed: int = 0, min_ratings: int = 5, reveal=REVEAL, on_step=None) -> pd.DataFrame:
     """The baselines and the hybrid side by side; one row per method (and ``n`` for ``few``).
 
     Parameters
@@ -114,7 +114,8 @@ def evaluate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, prot
     Returns
     -------
     DataFrame with ``method``, ``uses`` (and ``n``), then ``<metric>_mean`` and
-    ``<metric>_sd`` for rmse, mae, item_ndcg10 and user_ndcg10.
+    ``<metric>_sd`` for rmse, mae, item_ndcg10 and user_ndcg10.  ``on_step(done, total, what)``,
+    if given, hears of each fold as it starts.
     """
     if protocol not in PROTOCOLS:
         raise InputError(f"protocol must be one of {', '.join(PROTOCOLS)}, found {protocol!r}")
@@ -122,6 +123,8 @@ def evaluate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, prot
     C = _Coder(ratings, attributes, params.get("schema") or {}, params)
     records = []
     for f, test in enumerate(_split(ratings, protocol, folds, seed, min_ratings)):
+        if on_step is not None:
+            on_step(f, folds, f"fold {f + 1}")
         train = ~test
         if protocol == "few":
             records += _few(C, ratings, attributes, params, train, test, sub_seed(seed, "evaluation folds", f), reveal,
@@ -135,6 +138,8 @@ def evaluate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, prot
         pred = hybrid.predict(ratings["user"].to_numpy(str)[test], ratings["item"].to_numpy(str)[test])
         records.append({"fold": f, "method": "hybrid", "uses": "ratings, attributes, factors",
                         **_scores(C, test, pred)})
+    if on_step is not None:
+        on_step(folds, folds, "done")
     return summarise(pd.DataFrame(records))
 
 

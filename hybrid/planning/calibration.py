@@ -60,18 +60,21 @@ def _solve_probes(model, A_probe, indptr, idx, vals):
 
 def calibrate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, *, ns=NS,
               min_ratings: int = 60, n_probe: int = 120, k: int = 10, draws: int = 64,
-              seed: int = 0) -> pd.DataFrame:
+              seed: int = 0, on_step=None) -> pd.DataFrame:
     """Predicted against actual stability at each ``n``; one row per ``n``.
 
     Columns: ``n``, ``items``, ``predicted``, ``actual``, ``actual_se``
     (standard error of the mean actual overlap) and ``gap`` = ``|predicted - actual|``.
+    ``on_step(done, total, what)``, if given, hears of each step (the fit, then each ``n``).
     """
+    step = on_step or (lambda *a: None)
     check_checks(n_probe=n_probe, seed=seed, min_ratings=min_ratings)
     rng = np.random.default_rng(seed)
     counts = ratings["item"].value_counts()
     eligible = np.sort(counts.index[counts >= max(min_ratings, max(ns))].to_numpy(str))
     probes = np.sort(rng.choice(eligible, min(n_probe, len(eligible)), replace=False))
     inside = ratings["item"].isin(probes).to_numpy()
+    step(0, len(ns) + 1, "fitting without the probed items")
     model = HybridFactorModel(**params).fit(ratings[~inside], attributes)
     assessor = Assessor(model, k=k, draws=draws, seed=seed)
     pool = model.item_blocks_[assessor.pool][:, 1 if model.biases else 0:]
@@ -84,7 +87,8 @@ def calibrate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, *, 
     z_full, cov_full = _solve_probes(model, A_probe, *_probe_rows(model, table, np.ones(len(table), bool)))
     full_lists = nearest(z_full[:, off:], pool, k)[0]
     rows = []
-    for n in ns:
+    for j, n in enumerate(ns):
+        step(j + 1, len(ns) + 1, f"probes with {n} ratings")
         z, cov = _solve_probes(model, A_probe, *_probe_rows(model, table, table["order"].to_numpy() < n))
         # the yardstick is the full-data list, not the truth: given n ratings, the
         # full-data vector is spread around the n-rating one by Sigma_n - Sigma_full
@@ -94,4 +98,5 @@ def calibrate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, *, 
                      "actual": float(actual.mean()),
                      "actual_se": float(actual.std(ddof=1) / np.sqrt(len(actual))),
                      "gap": float(abs(predicted.mean() - actual.mean()))})
+    step(len(ns) + 1, len(ns) + 1, "done")
     return pd.DataFrame(rows)
