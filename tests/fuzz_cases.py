@@ -57,17 +57,17 @@ def build(root: Path) -> Files:
         assert done.exit_code == 0, done.output
         F.f[name.replace("model", "plan")] = plan
     asks = pd.read_csv(root / "model-asks.csv").head(5)
-    pd.DataFrame({"member": asks["user"], "lot": asks["item"], "score": 4.0}).to_csv(root / "answers.csv", index=False)
+    pd.DataFrame({"member": asks["user"], "lot": asks["item"], "rating": 4.0}).to_csv(root / "answers.csv", index=False)
     F.f["answers"] = root / "answers.csv"
     # files of the wrong sort
     bad = root / "bad"
     bad.mkdir()
     (bad / "empty.csv").write_text("")
-    (bad / "header.csv").write_text("member,lot,score\n")
+    (bad / "header.csv").write_text("member,lot,rating\n")
     (bad / "binary.csv").write_bytes(bytes(range(256)) * 8)
     model_bytes = Path(F["model"]).read_bytes()
     (bad / "half.hybrid").write_bytes(model_bytes[:len(model_bytes) // 2])
-    (bad / "text.hybrid").write_text("member,lot,score\nM1,L1,4\n")
+    (bad / "text.hybrid").write_text("member,lot,rating\nM1,L1,4\n")
     (bad / "folder.csv").mkdir()
     shutil.copyfile(F["model"], bad / "model.csv")
     F.f.update({f"bad_{p.stem}": p for p in bad.iterdir()})
@@ -135,13 +135,12 @@ class Command:
 @functools.lru_cache(maxsize=64)
 def _pool_size(model_path: str, k: int) -> int:
     from hybrid import load
-    from hybrid.planning.assess import Assessor
-
     from hybrid.common.errors import InputError
+    from hybrid.planning.assess import Assessor
 
     model = load(model_path)
     try:
-        return len(Assessor(model, k=k, draws=2, pool_min_ratings=model.settings_["plan"]["pool_min_ratings"]).pool)
+        return len(Assessor(model, k=k, draws=2, candidate_min_ratings=model.settings_["plan"]["candidate_min_ratings"]).pool)
     except InputError:   # too few candidates for this k: the planner refuses it
         return 0
 

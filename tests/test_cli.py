@@ -46,7 +46,7 @@ def one_line_error(result, *fragments):
 def test_train_summary_and_model(files):
     s = files["summary"]
     assert s["users"] == 400 or s["users"] <= 400
-    assert s["ratings"] + s["held out"] == len(pd.read_csv(files["ratings"]))
+    assert s["ratings fitted"] + s["ratings held out (to check the fit)"] == len(pd.read_csv(files["ratings"]))
     m = hybrid.load(files["model"])
     assert m.metrics_["train_rmse"] == pytest.approx(s["train RMSE"], abs=1e-4)
     assert m.launch_offset_ == pytest.approx(s["launch offset (new items' bias)"], abs=1e-4)
@@ -77,7 +77,7 @@ def test_related_and_inspect(files):
     result = run("related", files["model"], "L0003", "--k", "4", "--format", "csv")
     assert result.exit_code == 0
     table = pd.read_csv(pd.io.common.StringIO(result.stdout))
-    assert table["rank"].tolist() == [1, 2, 3, 4] and table["distance"].is_monotonic_increasing
+    assert table["position"].tolist() == [1, 2, 3, 4] and table["distance"].is_monotonic_increasing
     assert "L0003" not in table["neighbour"].tolist()
     info = json.loads(run("inspect", files["model"], "--format", "json").stdout)
     assert info["setting rank"] == 5 and "notes (text)" in info["attribute columns"]
@@ -225,7 +225,7 @@ def test_update_folds_in_and_plan_shows_what_is_left(files, tmp_path):
     model2 = tmp_path / "m2.hybrid"
     new = tmp_path / "week1.csv"
     pd.DataFrame({"member": ["M00001", "M00002", "M00003"], "lot": ["L0003", "L0003", "L0004"],
-                  "score": [4.5, 4.0, 2.0]}).to_csv(new, index=False)
+                  "rating": [4.5, 4.0, 2.0]}).to_csv(new, index=False)
     result = run("update", files["model"], new, "--out", model2, "--format", "json")
     assert result.exit_code == 0, result.output
     before, after = hybrid.load(files["model"]), hybrid.load(model2)
@@ -233,7 +233,7 @@ def test_update_folds_in_and_plan_shows_what_is_left(files, tmp_path):
     assert after.item_counts_[j] >= before.item_counts_[j] + 1
     assert json.loads(result.stdout)["items touched"] == 2
     bad = tmp_path / "bad.csv"
-    pd.DataFrame({"member": ["M00001"], "lot": ["NEW"], "score": [4.0]}).to_csv(bad, index=False)
+    pd.DataFrame({"member": ["M00001"], "lot": ["NEW"], "rating": [4.0]}).to_csv(bad, index=False)
     one_line_error(run("update", files["model"], bad, "--out", tmp_path / "m3.hybrid"),
                    "item 'NEW' is not in the model")
     assert not (tmp_path / "m3.hybrid").exists()
@@ -243,7 +243,7 @@ def test_update_folds_in_and_plan_shows_what_is_left(files, tmp_path):
                    "all 3 ratings are already in the model with the same values")
     assert not (tmp_path / "m4.hybrid").exists()
     edited = tmp_path / "week1b.csv"
-    pd.read_csv(new).assign(score=[4.5, 4.0, 3.0]).to_csv(edited, index=False)
+    pd.read_csv(new).assign(rating=[4.5, 4.0, 3.0]).to_csv(edited, index=False)
     result = run("update", model2, edited, "--out", tmp_path / "m5.hybrid", "--format", "json")
     summary = json.loads(result.stdout)
     assert (summary["ratings added"], summary["ratings changed"],
@@ -350,7 +350,7 @@ def test_report_refuses_a_plan_from_another_model_and_states_the_plans_settings(
             f"model fingerprint {m.fingerprint_}.") in page
     # the same model after an update is another model for the plan's numbers
     week = tmp_path / "w.csv"
-    pd.DataFrame({"member": ["M00001"], "lot": ["L0005"], "score": [1.0]}).to_csv(week, index=False)
+    pd.DataFrame({"member": ["M00001"], "lot": ["L0005"], "rating": [1.0]}).to_csv(week, index=False)
     other = tmp_path / "m2.hybrid"
     assert run("update", files["model"], week, "--out", other).exit_code == 0
     one_line_error(run("report", other, "--plan", plan_file, "--out", tmp_path / "r2.html"),
@@ -365,11 +365,11 @@ def test_report_without_a_plan_plans_exactly_as_plan_does(files, tmp_path, monke
     cfg = tmp_path / "odd.toml"   # every plan setting away from its default
     assert "[plan]" not in files["config"].read_text()
     cfg.write_text(files["config"].read_text() + '\n[plan]\nmax_needed = 80\naim = "gain"\nresponders = "likely"\n'
-                   'pool_min_ratings = 12\ndraws = 24\nk = 6\ntarget = 0.7\n')
+                   'candidate_min_ratings = 12\ndraws = 24\nk = 6\ntarget = 0.7\n')
     calls, real = [], planner.plan
     monkeypatch.setattr(planner, "plan", lambda model, **kw: calls.append(kw) or real(model, **kw))
     assert run("plan", files["model"], "--config", cfg, "--out", tmp_path / "p.csv").exit_code == 0
     assert run("report", files["model"], "--config", cfg, "--out", tmp_path / "r.html").exit_code == 0
     by_plan, by_report = ({k: v for k, v in c.items() if v is not None and k != "client"} for c in calls)
     assert by_plan == by_report
-    assert by_plan["max_needed"] == 80 and by_plan["responders"] == "likely" and by_plan["pool_min_ratings"] == 12
+    assert by_plan["max_needed"] == 80 and by_plan["responders"] == "likely" and by_plan["candidate_min_ratings"] == 12

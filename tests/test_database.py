@@ -68,7 +68,7 @@ def test_plan_and_update_read_database_tables(club_db):
     engine = sqlalchemy.create_engine(url)
     week = pd.read_sql_table("ratings", engine).head(0)
     lots = pd.read_sql_table("new_lots", engine)["lot"]
-    week = pd.DataFrame({"member": ["M00001", "M00002"], "lot": lots.iloc[:2].tolist(), "score": [4.0, 5.0]})
+    week = pd.DataFrame({"member": ["M00001", "M00002"], "lot": lots.iloc[:2].tolist(), "rating": [4.0, 5.0]})
     week.to_sql("week1", engine, index=False)
     engine.dispose()
     done = run(app, ["update", model, f"{url}#week1", "--new-items", f"{url}#new_lots", "--config", CONFIG,

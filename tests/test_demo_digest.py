@@ -36,11 +36,14 @@ BITS = ("model_fingerprint",)   # a hash of the model's bits: another BLAS, anot
 # ranked by taste (lift) and gained the name, interval, reasons and lift columns; the model's
 # metrics record the launch spread.  Every model array, the plan and the asks stayed as they were.
 # Then the report's new-items table shows names, intervals, reasons and the audience, and sorts.
+# Then one word for one idea (README, "Words used here"): the demo's rating column is 'rating'
+# (was 'score'), the asks' 'rank' and 'gain' are 'order' and 'information', the plan's 'in_pool'
+# is 'candidate', related lists' 'rank' is 'position'; their values, and the model, unchanged.
 EXPECTED = {
-    'ratings.csv': 'cfd306c4eb1216b163d8369e9f87ea138337037a988197fe6fbd6ef8406e57ae',
+    'ratings.csv': 'eea280a750b723c5d90d0cc349b0f27c3b2b1f76c18e0df25b7545daad7cc3da',
     'lots.csv': 'bdfb0cb20b202edcea46229d9edefd90a40dd3bb2e0fb5718a06c33c7bfaf097',
     'new_lots.csv': '68b98f1b93427662cbfc47450620e2f50299c52a616cc5197cabdc8183819457',
-    'coffee.toml': 'd2b7635688a5750d9c4bcfd453855ba9e16ac521feaef9b5ee24ef45881b5a7a',
+    'coffee.toml': '6835659ecc76b3b2f6ab215cfc33fd7d0d216f1b03f94f2a3255fb70acc43edc',
     'new_lots_scored.csv item': '9caacee9caf510a5add6ab0b757ccfe456cc69bfdca906a50a8b7dba98c4d168',
     'new_lots_scored.csv name': '4ee88defe987d585a2920e718b49b12912816d682c9d9387737abad50ef5394c',
     'new_lots_scored.csv content_only': '8f78ae7486a61d3b862d2e39c4cdd41f315c1339787c9cc60d99df5e44d023d9',
@@ -110,20 +113,20 @@ EXPECTED = {
     'plan.csv planned': 'f3a36785ccee4ffff5d12b87a9d86ff3bb82e6ef702fbfb2a52711f7a5b0b84a',
     'plan.csv reaches_target': 'e8daf662b6fd6aec04613a304d8107e7fb3dc19247abef62c6e7a424f07441eb',
     'plan.csv priority': '640:7.919798e+00:24.318043:7.919798:0.128130',
-    'plan.csv in_pool': '9ef07f790bcc63105a868042dbbff547e8f331a3e0a87268bd4e88bce7ab88c6',
+    'plan.csv candidate': '9ef07f790bcc63105a868042dbbff547e8f331a3e0a87268bd4e88bce7ab88c6',
     'plan.csv relative_variance': '640:1.147769e+01:19.521872:11.477689:-0.815547',
     'plan.csv plan_target': '640:2.023858e+01:25.298221:20.238577:-0.020750',
     'plan.csv plan_k': '2625ff5cad6bd99dcc1c0edd0389fb3252b15a3cb93bd45886eef4256d5dc538',
     'plan.csv plan_budget': 'b35481b839081be0c65c7538d5bdbdc3733de6f9103a8dc8a9e0426e59015c34',
     'asks.csv item': 'd079d1e6616bfc9e52c3c8d6ff3bfa314f3e6eae204fe39c7252586cb05fc86f',
     'asks.csv user': '5dc066345e40b0fe1f5325a683f86ee31720afc3da17651c61a073a0783148f2',
-    'asks.csv rank': 'f9402a8529fa2034cf5a72d9d17054952226f69ee8028c83d48774dda4db1a55',
-    'asks.csv gain': '488:9.456024e-01:19.307532:0.945602:0.166288',
+    'asks.csv order': 'f9402a8529fa2034cf5a72d9d17054952226f69ee8028c83d48774dda4db1a55',
+    'asks.csv information': '488:9.456024e-01:19.307532:0.945602:0.166288',
     'asks.csv expected_rating': '488:7.362123e+01:21.053520:73.621233:0.319331',
     'week1.csv member': '1c36d8d5207585554a9176fea4346cf6266f9397773a50a5c363d9da8be77679',
     'week1.csv lot': '681a3643d466e21c1476412df624344dec8fd57b27a99d5e23f8bd88e1d4023a',
-    'week1.csv score': '129:3.725252e+01:10.724108:37.252517:0.153224',
-    'report.html': '7f0700efa5843243d73f186f41422f7341f569f76feac17f7cbd140fb5439529',
+    'week1.csv rating': '129:3.725252e+01:10.724108:37.252517:0.153224',
+    'report.html': '38b25415e83621808c054ba18b4e897d8c99898a8bff9937fcc1568e547e6f90',
     'model array user_ids': 'e4614767415322ceb427e71e576c18f263cb56e57405f5182e9bd1c85809ec56',
     'model array item_ids': 'c8c6e6a6ce558a68207992665e72539d79f1bd623bdb098b941ea642f2b21b8d',
     'model array user_blocks': '17586:1.735272e+01:0.159888:17.352715:0.028540',
@@ -154,11 +157,11 @@ EXPECTED = {
     'model metrics': 'df6f220e650075b4ca46aadafa97e75d9c037f2a63cfe0c3e0696943b3a97e5e',
     'model history': '37365aeceb6ce18d5ded755ccd08458eef6e481908e61020a5cc85ad4d66e951',
     'related lists euclidean item': '2e5ad0d0a6e53aec00210e8321aea614d2e4872ac6173de264049c53528043db',
-    'related lists euclidean rank': '946b433c813e5bc75abf170471022b2c0f4a477170043dbb41c4d0ee0147c42d',
+    'related lists euclidean position': '946b433c813e5bc75abf170471022b2c0f4a477170043dbb41c4d0ee0147c42d',
     'related lists euclidean neighbour': '91ba5e722c6ee4267b14af4d56cc113c9648f396f500ed18836571f7398232f9',
     'related lists euclidean distance': '10:3.335001e+00:3.060221:3.335001:-0.190021',
     'related lists cosine item': '2e5ad0d0a6e53aec00210e8321aea614d2e4872ac6173de264049c53528043db',
-    'related lists cosine rank': '946b433c813e5bc75abf170471022b2c0f4a477170043dbb41c4d0ee0147c42d',
+    'related lists cosine position': '946b433c813e5bc75abf170471022b2c0f4a477170043dbb41c4d0ee0147c42d',
     'related lists cosine neighbour': '0ad723986f4258e367349c412d8de1f54d96e8d484db5bc7836846c14f3926ab',
     'related lists cosine distance': '10:3.564275e-02:2.903654:0.035643:-0.211974',
 }

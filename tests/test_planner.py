@@ -189,7 +189,7 @@ def test_planning_some_items_matches_planning_all(club):
     part = plan(m, k=5, draws=32, budget=40, items=few)
     assert part.items["item"].tolist() == [few[0], few[1], few[2]]
     same = whole.loc[part.items["item"]]
-    for column in ("status", "ratings", "stability", "needed", "in_pool"):
+    for column in ("status", "ratings", "stability", "needed", "candidate"):
         assert part.items[column].tolist() == same[column].tolist(), column
     assert set(part.asks["item"]) <= set(few) and part.items["planned"].sum() <= 40
     with pytest.raises(InputError, match="item 'NOPE' is not in the model"):

@@ -123,7 +123,7 @@ def test_new_items_show_name_interval_reasons_and_audience(page):
     text, p = page
     table = _new_items_table(text)
     assert list(table.columns) == ["item", "name", "expected rating", "80% interval", "main reasons",
-                                   "audience (users)", "nearest existing items"]
+                                   "users likely to like it", "neighbours (distance)"]
     assert len(table) == int((p.items["ratings"] == 0).sum())
     ends = table["80% interval"].str.split(" to ", expand=True).astype(float)
     assert ((ends[0] <= table["expected rating"] + 5e-3) & (table["expected rating"] <= ends[1] + 5e-3)).all()

@@ -166,3 +166,41 @@ def test_the_long_library_calls_report_their_steps(club):
     calibrate(club.ratings, club.lots, params, ns=(0, 5), min_ratings=20, n_probe=10, draws=8,
               on_step=lambda *a: seen.append(a[:2]))
     assert seen == [(0, 3), (1, 3), (2, 3), (3, 3)]
+
+
+# words a one-word-per-idea rename retired (README, "Words used here"), and where they stood
+RETIRED = {
+    r"\bin_pool\b": "the plan's candidate column",
+    r"\bpool_min_ratings\b": "the candidates' setting",
+    r"neighbour candidates": "the candidates",
+    r"\bnearest\b": "the neighbours",
+    r"audience \(users\)": "the users likely to like it (the audience is a list of users)",
+}
+
+
+def test_screens_files_and_help_use_the_glossary_words(demo):
+    import typer.main
+
+    d = str(demo)
+    texts = []
+    group = typer.main.get_command(app)
+    for name in group.commands:
+        texts.append(CliRunner(env={"COLUMNS": "200"}).invoke(app, [name, "--help"]).stdout)
+    for args in (["score", f"{d}/club.hybrid", f"{d}/new_lots.csv", "--out", f"{d}/g.jsonl"],
+                 ["plan", f"{d}/club.hybrid", "--budget", "30", "--out", f"{d}/g.csv", "--asks", f"{d}/ga.csv"],
+                 ["related", f"{d}/club.hybrid", "L0042"], ["why", f"{d}/club.hybrid", "L0601"],
+                 ["inspect", f"{d}/club.hybrid"]):
+        done = CliRunner(env={"COLUMNS": "200"}).invoke(app, args)
+        assert done.exit_code == 0, done.output
+        texts.append(done.stdout)
+    texts += [(demo / name).read_text() for name in ("g.jsonl", "g.csv", "ga.csv", "report.html", "coffee.toml")]
+    texts.append(open("configs/default.toml").read())
+    for pattern, instead in RETIRED.items():
+        found = [t[max(0, m.start() - 40):m.end() + 20] for t in texts for m in [re.search(pattern, t)] if m]
+        assert not found, (pattern, instead, found[:2])
+    # the files' columns: ask order and information, related position, the demo's rating column
+    asks = pd.read_csv(demo / "ga.csv")
+    assert list(asks.columns) == ["item", "user", "order", "information", "expected_rating"]
+    related = json.loads(CliRunner().invoke(app, ["related", f"{d}/club.hybrid", "L0042", "--format", "json"]).stdout)
+    assert list(related[0]) == ["item", "position", "neighbour", "distance"]
+    assert pd.read_csv(demo / "ratings.csv", nrows=1).columns.tolist() == ["member", "lot", "rating"]

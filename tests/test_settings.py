@@ -34,7 +34,7 @@ def test_estimator_and_settings_file_share_every_default():
     assert DEFAULTS["model"]["holdout"] == HybridFactorModel().holdout == 0.05
     assert DEFAULTS["model"]["n_jobs"] == HybridFactorModel().n_jobs == -1
     plan_defaults = inspect.signature(plan).parameters
-    for name in ("target", "k", "draws", "max_needed", "aim", "responders", "pool_min_ratings", "seed"):
+    for name in ("target", "k", "draws", "max_needed", "aim", "responders", "candidate_min_ratings", "seed"):
         assert plan_defaults[name].default == SETTINGS["plan"][name].default, name
 
 
@@ -69,3 +69,33 @@ def test_a_bad_value_fails_alike_from_library_file_and_command_line(club, sectio
     done = CliRunner().invoke(app, [str(a) for a in [*args, "--config", toml]])   # the command line
     assert done.exit_code == 2 and done.stderr.count("\n") == 1
     assert words.split(" ", 1)[1] in done.stderr and f"{section}.{name}" in done.stderr
+
+
+def test_a_renamed_setting_still_works_for_one_release_with_a_notice(tmp_path):
+    # plan.pool_min_ratings is now plan.candidate_min_ratings (README, "Words used here")
+    import warnings
+
+    old = tmp_path / "old.toml"
+    old.write_text("[plan]\npool_min_ratings = 7\n")
+    with pytest.warns(FutureWarning, match="setting 'plan.pool_min_ratings' is now 'plan.candidate_min_ratings'"):
+        cfg = load_config(old)
+    assert cfg["plan"]["candidate_min_ratings"] == 7 and "pool_min_ratings" not in cfg["plan"]
+    club = tasting_club(n_members=300, n_lots=60, n_new=3, seed=2)
+    model = HybridFactorModel(rank=3, epochs=3, schema=club.schema, text_min_df=1).fit(club.ratings, club.lots)
+    with pytest.warns(FutureWarning, match="candidate_min_ratings"):
+        a = plan(model, draws=8, pool_min_ratings=7)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        b = plan(model, draws=8, candidate_min_ratings=7)
+    assert a.items.equals(b.items)
+    # a model file whose stored settings use the old name reads as if written with the new
+    model.set_fitted(settings_={**load_config(), "plan": {**load_config()["plan"]}})
+    model.settings_["plan"]["pool_min_ratings"] = model.settings_["plan"].pop("candidate_min_ratings")
+    model.save(tmp_path / "m.hybrid")
+    assert HybridFactorModel.load(tmp_path / "m.hybrid").settings_["plan"]["candidate_min_ratings"] == 20
+    # and the command line says it in one line
+    done = CliRunner().invoke(app, ["plan", str(tmp_path / "m.hybrid"), "--config", str(old), "--out",
+                                    str(tmp_path / "p.csv")])
+    assert done.exit_code == 0, done.output
+    notes = [line for line in done.stderr.splitlines() if "pool_min_ratings" in line]
+    assert len(notes) == 1 and notes[0].startswith("note: ") and "until the next release" in notes[0]

@@ -12,11 +12,12 @@ from __future__ import annotations
 import copy
 import json
 import tomllib
+import warnings
 from pathlib import Path
 from typing import Any
 
 from hybrid.common.errors import InputError, did_you_mean
-from hybrid.common.limits import ESTIMATOR, SETTINGS, defaults
+from hybrid.common.limits import ESTIMATOR, SETTINGS, defaults, upgrade_settings
 
 # the defaults, from the one table of settings (hybrid.common.limits.SETTINGS)
 DEFAULTS: dict[str, dict[str, Any]] = {section: defaults(section) for section in SETTINGS}
@@ -71,6 +72,9 @@ def load_config(path: str | Path | None = None, overrides: dict | None = None) -
             data = tomllib.loads(path.read_text(encoding="utf-8"))
         except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
             raise InputError(f"not valid TOML: {exc}", file=str(path)) from None
+        upgrade_settings(data, lambda old, new: warnings.warn(
+            f"{path}: setting '{old}' is now '{new}'; the old name works until the next release",
+            FutureWarning, stacklevel=2))
         _merge(cfg, data, (), str(path))
     if overrides:
         _merge(cfg, overrides, (), "overrides")
@@ -127,7 +131,7 @@ def model_params(cfg: dict) -> dict:
 def render_defaults() -> str:
     """``configs/default.toml``: every setting the file may hold, its default and its help."""
     lines = ["# Every setting hybrid knows, with its default.  A config file may set any subset;",
-             "# an unknown key is an error (with the nearest known key suggested).",
+             "# an unknown key is an error (with the closest known key suggested).",
              "# Rendered from hybrid.common.limits.SETTINGS (python -c 'from hybrid.app.config import",
              "# render_defaults; print(render_defaults(), end=\"\")' > configs/default.toml)."]
     for section, table in SETTINGS.items():

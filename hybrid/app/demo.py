@@ -53,12 +53,12 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
     say(f"Scored the {len(scored)} new lots from their attributes alone (estimates):")
     for row in best.itertuples():
         lot = club.new_lots.loc[row.item]
-        near = ", ".join(i for i, _ in row.nearest[:3])
+        near = ", ".join(i for i, _ in row.neighbours[:3])
         reason = ", ".join(f"{name} {effect:+.2f}" for name, effect in row.reasons[:2])
         say(f"  {row.item} {lot['name']} ({lot['region']}, {lot['process']}, notes: {lot['notes']}): "
             f"expected {row.expected_rating:.2f} (80% interval {row.expected_low:.2f} to {row.expected_high:.2f}; "
             f"most from {reason}), {row.liked_share:.0%} of members likely to give "
-            f"{cfg['score']['liked']:g}+; nearest existing lots {near}")
+            f"{cfg['score']['liked']:g}+; neighbours {near}")
     _campaign(model, new, cfg, folder, paths, say)
     say(f"Files are in {folder}/ (ratings, lots, new lots and the same in club.db, settings, model, scores, plan, asks, "
         f"week1 answers to try `hybrid update`, report.html). "
@@ -72,7 +72,7 @@ def _first_answers(asks, model, share=0.3, seed=0):
     picked = asks[rng.random(len(asks)) < share]
     noise = rng.normal(0, 0.6, len(picked))
     score = np.clip(np.round((picked["expected_rating"].to_numpy() + noise) * 2) / 2, 1.0, 5.0)
-    return pd.DataFrame({"member": picked["user"].to_numpy(), "lot": picked["item"].to_numpy(), "score": score})
+    return pd.DataFrame({"member": picked["user"].to_numpy(), "lot": picked["item"].to_numpy(), "rating": score})
 
 
 def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):

@@ -218,7 +218,7 @@ def training_section(model):
 
 def new_items_section(model, items, liked, k=3, interval=0.8):
     """The items without ratings: name, expected rating with its interval, the largest reasons,
-    the audience (users expected at ``liked`` or more) and the nearest rated items; a table the
+    the users likely to like it (expected at ``liked`` or more) and its neighbours; a table the
     reader sorts by clicking a column's heading."""
     new = items[items["ratings"] == 0]["item"].to_numpy(str)
     if not len(new):
@@ -239,12 +239,12 @@ def new_items_section(model, items, liked, k=3, interval=0.8):
     table = table.assign(**{
         "expected rating": expected, f"{interval:.0%} interval": [f"{a:.2f} to {b:.2f}" for a, b in zip(low, high)],
         "main reasons": ["; ".join(f"{n} {e:+.2f}" for n, e in why.top(j, 3)) for j in range(len(new))],
-        "audience (users)": np.concatenate([(b >= liked).sum(1) for b in blocks]),
-        "nearest existing items": [", ".join(f"{model.item_ids_[rated[j]]} ({d:.2f})" for j, d in zip(r, dd))
+        "users likely to like it": np.concatenate([(b >= liked).sum(1) for b in blocks]),
+        "neighbours (distance)": [", ".join(f"{model.item_ids_[rated[j]]} ({d:.2f})" for j, d in zip(r, dd))
                                    for r, dd in zip(idx, dist)]})
     return (f"<h2>New items</h2><p>Expected ratings are estimates, with their {interval:.0%} interval; the main "
-            "reasons are the attributes that move the expected rating most (on the rating scale); the audience "
-            f"counts the users whose expected rating is at least {liked:g}. Click a column's heading to sort.</p>"
+            "reasons are the attributes that move the expected rating most (on the rating scale); the users likely to "
+            f"like it are those whose expected rating is at least {liked:g}. Click a column's heading to sort.</p>"
             + _table(table, "new-items sortable"))
 
 

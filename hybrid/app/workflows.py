@@ -10,6 +10,11 @@ from hybrid.engines.engine import Engine
 from hybrid.estimator.model import HybridFactorModel
 from hybrid.io.tables import read_training_tables
 
+# what the planner's statuses mean, on every screen and in the report that shows them
+STATUS_WORDS = ("Under-covered: its neighbour list has not settled, it needs more ratings (whatever its count). "
+                "Trusted: its stability is at or above the target. Stability: the expected share of its "
+                "neighbour list that stays once its vector is known.")
+
 # shown by every screen that plans or reports a campaign
 CAUTION = ("Ratings are personal data, and a campaign contacts people: ask only customers who agreed "
            "to be asked, honour opt-outs, and follow the data-protection law that applies to you. "
@@ -37,7 +42,7 @@ def plan_arguments(cfg: dict, **flags) -> dict:
             "max_needed": p["max_needed"], "aim": p["aim"], "responders": p["responders"],
             # 'likely' responders are those expected to give the liked score or more
             "responder_threshold": p["responder_threshold"] or cfg["score"]["liked"],
-            "pool_min_ratings": p["pool_min_ratings"]}
+            "candidate_min_ratings": p["candidate_min_ratings"]}
     args.update({name: value for name, value in flags.items() if value is not None})
     return args
 

@@ -89,8 +89,8 @@ def _summary(model) -> dict:
     m = model.metrics_
     # counts from the model as it is now (items may have been added, ratings folded in)
     return {"users": len(model.user_ids_), "items": len(model.item_ids_),
-            "rated items": int((model.item_counts_ > 0).sum()), "ratings": int(model.item_counts_.sum()),
-            "held out": m["n_holdout"], "features": m["n_features"],
+            "rated items": int((model.item_counts_ > 0).sum()), "ratings fitted": int(model.item_counts_.sum()),
+            "ratings held out (to check the fit)": m["n_holdout"], "features": m["n_features"],
             "rank fitted": model.rank_, "rank allowed": model.rank,
             "rank search (held-out RMSE by rank)":
                 ", ".join(f"{r}: {e:.4f}" for r, e in model.rank_path_) or "off",
@@ -101,7 +101,7 @@ def _summary(model) -> dict:
             "penalty search (held-out RMSE)": _penalty_search(model.penalty_path_),
             "epochs run": m["epochs_run"], "objective": round(m["objective"], 3),
             "train RMSE": round(m["train_rmse"], 4),
-            "validation RMSE": None if m["valid_rmse"] is None else round(m["valid_rmse"], 4),
+            "validation RMSE (final model)": None if m["valid_rmse"] is None else round(m["valid_rmse"], 4),
             "residual variance": round(m["sigma2"], 4),
             "launch offset (new items' bias)": round(model.launch_offset_, 4), "seconds": round(m["seconds"], 2),
             # models saved before the stages were timed have none
@@ -142,7 +142,7 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
           engine: Optional[str] = typer.Option(None, "--engine", help=ENGINE_HELP),
           address: Optional[str] = typer.Option(None, "--address", help=ADDRESS_HELP),
           format: str = typer.Option("table", "--format", help="table, csv or json (the summary).")):
-    """Score items no one has rated: expected rating with its interval, reasons, audience, nearest items.
+    """Score items no one has rated: expected rating with its interval, reasons, audience, neighbours.
 
     Example: hybrid score club.hybrid new_lots.csv --out scored.csv --sort expected_rating
     """
@@ -164,7 +164,7 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
         # the ten best of the whole file, and the rated items whose row differs from the
         # attributes they were fitted with, kept as the chunks stream past (one held at a time)
         for df in gen:
-            shown = [c for c in ["item", *kept, *_SHOWN[1:], "nearest"] if c in df.columns]
+            shown = [c for c in ["item", *kept, *_SHOWN[1:], "neighbours"] if c in df.columns]
             seen["best"] = pd.concat([seen["best"], df[shown]]).nlargest(10, "expected_rating")
             seen["edited"] += int((df["attributes_changed"] & ~df["content_only"]).sum())
             bar.advance(len(df))
@@ -180,7 +180,8 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
              "retrain to fit the new attributes")
     top = seen["best"]
     if len(top):
-        top = top.assign(nearest=[v[0][0] if v else "" for v in top["nearest"]])
+        top = top.assign(neighbours=[v[0][0] if v else "" for v in top["neighbours"]]).rename(
+            columns={"neighbours": "first neighbour"})
         emit(top, format, f"{n} items scored into {source_name(out)}; the {len(top)} with the highest expected rating "
                           f"(expected_low to expected_high: the {args['interval']:.0%} interval; estimates)")
 
@@ -242,14 +243,14 @@ def related(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
             new_items: Optional[str] = typer.Option(None, "--new-items",
                                                      help="Attribute table describing ITEM if the model lacks it."),
             format: str = typer.Option("table", "--format", help="table, csv or json.")):
-    """Nearest items by distance between item vectors (rated and projected alike).
+    """An item's neighbours: the items closest to it by distance between item vectors (rated and projected).
 
     Example: hybrid related club.hybrid L0007 --k 5 --metric cosine
     """
     check_format(format)
     model = HybridFactorModel.load(model_file)
     attrs = _describing(model, item, new_items)
-    emit(model.related([item], k=k, metric=metric, attributes=attrs), format, f"items nearest to {item} ({metric})")
+    emit(model.related([item], k=k, metric=metric, attributes=attrs), format, f"neighbours of {item} ({metric} distance)")
 
 
 @app.command(cls=Command)
@@ -266,7 +267,7 @@ def inspect(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
     params = model.get_params()
     info.update({f"setting {k}": v for k, v in params.items() if k != "schema"})
     info["attribute columns"] = ", ".join(f"{c} ({s['type']})" for c, s in model.features_.spec().items())
-    info["last epochs' validation RMSE"] = ", ".join(
+    info["validation RMSE of the last epochs (before the final steps)"] = ", ".join(
         f"{r['valid_rmse']:.4f}" for r in model.history_[-3:] if r["valid_rmse"] == r["valid_rmse"])
     emit_mapping(info, format, f"model {model_file}")
 

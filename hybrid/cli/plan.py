@@ -7,7 +7,7 @@ from typing import Optional
 import typer
 
 from hybrid.app.config import load_config, model_params, settings_for, with_engine
-from hybrid.app.workflows import CAUTION, plan_arguments
+from hybrid.app.workflows import CAUTION, STATUS_WORDS, plan_arguments
 from hybrid.cli.display import (
     ADDRESS_HELP,
     ENGINE_HELP,
@@ -73,13 +73,14 @@ def plan_command(
     if asks is not None:
         write_table(result.asks, asks)
     summary = result.summary()
-    summary.update({"neighbour candidates": f"{result.settings['pool_size']} ({result.settings['pool_rule']})"})
+    summary.update({"candidates": f"{result.settings['pool_size']} ({result.settings['pool_rule']})"})
     emit_mapping(summary, format, f"plan written to {out}")
     if format == "table":
         top = result.items[result.items["status"] != "trusted"].sort_values(
             ["needed", "stability"], ascending=[False, True], na_position="first").head(10)
         emit(top[["item", "status", "ratings", "stability", "needed_label", "planned"]].rename(
-            columns={"needed_label": "needed"}), "table", "the items that need the most")
+            columns={"needed_label": "ratings needed"}), "table", "the items that need the most")
+        say(STATUS_WORDS)
         say(CAUTION)
 
 

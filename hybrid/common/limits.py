@@ -141,7 +141,7 @@ SETTINGS = {
         "liked": S(4.0, _real(lambda v: True, "a number"),
                    'a user "likes" an item when the expected rating is at least this'),
         "audience": S(10, _whole(0), "users listed per new item"),
-        "neighbours": S(5, _whole(0), "nearest existing items listed per new item"),
+        "neighbours": S(5, _whole(0), "neighbours (the closest rated items) listed per new item"),
         "chunk": S(2000, _whole(1), "items scored at a time (bounds memory)"),
         "clip_numbers": S(True, ((lambda v: isinstance(v, bool)), "true or false"),
                           "hold new items' numbers to the range seen in training before projecting"),
@@ -162,7 +162,7 @@ SETTINGS = {
                         'whose answers "ratings needed" assumes: "active" users, or "likely" likers'),
         "responder_threshold": S(0.0, _real(lambda v: True, "a number"),
                                  'with "likely": expected rating above this (0 = the liked level)'),
-        "pool_min_ratings": S(20, _whole(0), "items with this many ratings are the candidates of neighbour lists"),
+        "candidate_min_ratings": S(20, _whole(0), "items with this many ratings are the candidates of neighbour lists"),
         "aim": S("reach", _one_of(*AIMS),
                  'budget split: "reach" (most items to target) or "gain" (most total stability)'),
         "seed": S(0, _whole(0), "seed of the posterior draws"),
@@ -183,6 +183,27 @@ SETTINGS = {
     },
 }
 del S
+
+# settings renamed so that one idea has one word (README, "Words used here"): the old name still
+# works for one release, with a one-line notice where a user wrote it
+RENAMED = {("plan", "pool_min_ratings"): "candidate_min_ratings"}
+
+
+def upgrade_settings(cfg: dict | None, notice=None) -> dict | None:
+    """``cfg`` with every renamed setting under its new name (in place); ``notice(old, new)`` is
+    told of each one found, so that a settings file the user wrote can say so.
+
+    >>> upgrade_settings({"plan": {"pool_min_ratings": 5}})
+    {'plan': {'candidate_min_ratings': 5}}
+    """
+    for (section, old), new in RENAMED.items():
+        table = (cfg or {}).get(section)
+        if isinstance(table, dict) and old in table:
+            table[new] = table.pop(old)
+            if notice is not None:
+                notice(f"{section}.{old}", f"{section}.{new}")
+    return cfg
+
 
 # the rules by themselves, for the checks below
 PLAN = {name: s.rule for name, s in SETTINGS["plan"].items()}

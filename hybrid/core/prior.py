@@ -105,7 +105,7 @@ def em_covariance(grams, rhs, prior_mean, sigma2, Psi, rounds=200, tol=1e-4, wei
 
 ROUNDS = 10
 # the check reads neighbour lists among items as the planner forms them, by its default pool rule
-POOL_MIN_RATINGS = SETTINGS["plan"]["pool_min_ratings"].default
+POOL_MIN_RATINGS = SETTINGS["plan"]["candidate_min_ratings"].default
 
 
 @dataclass

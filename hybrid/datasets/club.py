@@ -134,7 +134,7 @@ def write_samples(folder: str | Path, club: TastingClub | None = None) -> dict[s
     club = club or tasting_club()
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
-    tables = {"ratings": club.ratings.rename(columns={"user": "member", "item": "lot", "rating": "score"}),
+    tables = {"ratings": club.ratings.rename(columns={"user": "member", "item": "lot", "rating": "rating"}),
               "lots": club.lots.reset_index(), "new_lots": club.new_lots.reset_index()}
     paths = {}
     for name, table in tables.items():

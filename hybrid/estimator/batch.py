@@ -49,7 +49,7 @@ def score_items(model, attributes: pd.DataFrame, *, liked: float = _S["liked"], 
     ``moved_by_ratings`` is ``mean_user_rating`` exactly, :func:`hybrid.estimator.explain.reasons`),
     ``audience`` (list of (user, expected rating, lift), best first: by lift, how much more the
     user is expected to like this item than the average rated item, with ``audience_by='taste'``;
-    by expected rating with ``'rating'``), ``nearest`` (list of (item, distance)) among the
+    by expected rating with ``'rating'``), ``neighbours`` (list of (item, distance)) among the
     model's rated items, and ``warnings`` (what looks odd in the item's row, '' if nothing:
     :mod:`hybrid.estimator.oddities`; each kind is also warned once, an
     :class:`~hybrid.estimator.oddities.OddInputWarning`).  ``clip_numbers`` holds numbers to the
@@ -158,7 +158,7 @@ def _score_chunk(shared, part, known, notes):
         "reasons": [[(name, round(e, 6)) for name, e in why.top(j)] for j in range(len(ids))],
         "audience": [list(zip(users[t].tolist(), np.round(v, 4).tolist(), np.round(f, 4).tolist()))
                      for t, v, f in zip(top, top_scores, top_lift)],
-        "nearest": [list(zip(items[t].tolist(), np.round(v, 6).tolist())) for t, v in zip(nidx, ndist)],
+        "neighbours": [list(zip(items[t].tolist(), np.round(v, 6).tolist())) for t, v in zip(nidx, ndist)],
         "warnings": list(notes),
     })
 
@@ -167,7 +167,7 @@ def flat_columns(df: pd.DataFrame, n_reasons: int = _S["reasons"]) -> pd.DataFra
     """Wide columns: user_1, user_1_rating, user_1_lift, ..., neighbour_1, neighbour_1_distance, ...,
     reason_1, reason_1_effect, ... (the first ``n_reasons`` reasons)."""
     columns = {}
-    for name, col, values in (("user", "audience", ("rating", "lift")), ("neighbour", "nearest", ("distance",)),
+    for name, col, values in (("user", "audience", ("rating", "lift")), ("neighbour", "neighbours", ("distance",)),
                               ("reason", "reasons", ("effect",))):
         # every chunk the same columns (a database table or a Parquet file takes one shape):
         # the reasons' width is the setting, the others' the lists' own (the same in every row)
@@ -177,14 +177,14 @@ def flat_columns(df: pd.DataFrame, n_reasons: int = _S["reasons"]) -> pd.DataFra
             for m, value in enumerate(values, start=1):
                 columns[f"{name}_{j + 1}_{value}"] = [v[j][m] if j < len(v) else np.nan for v in df[col]]
     # joined at once: a column at a time re-copies the frame (thousands of columns for a long audience)
-    return pd.concat([df.drop(columns=["audience", "nearest", "reasons"]).reset_index(drop=True),
+    return pd.concat([df.drop(columns=["audience", "neighbours", "reasons"]).reset_index(drop=True),
                       pd.DataFrame(columns, index=range(len(df)))], axis=1)
 
 
 def _records(df: pd.DataFrame):
     for rec in df.to_dict(orient="records"):
         rec["audience"] = [{"user": u, "expected_rating": r, "lift": f} for u, r, f in rec["audience"]]
-        rec["nearest"] = [{"item": i, "distance": d} for i, d in rec["nearest"]]
+        rec["neighbours"] = [{"item": i, "distance": d} for i, d in rec["neighbours"]]
         rec["reasons"] = [{"feature": f, "effect": e} for f, e in rec["reasons"]]
         rec["content_only"] = bool(rec["content_only"])
         rec["attributes_changed"] = bool(rec["attributes_changed"])
@@ -211,7 +211,7 @@ def write_scores(chunks, path: str | Path, reasons: int = _S["reasons"]) -> int:
     table (``URL#table``, the CSV's columns; :mod:`hybrid.io.database`); return rows.
 
     CSV and Parquet get the wide columns of :func:`flat_columns`; JSON and JSON Lines keep the audience
-    and the nearest items as lists.  One chunk is held at a time whatever the format.
+    and the neighbours as lists.  One chunk is held at a time whatever the format.
     """
     if is_database(path):
         return write_database_table((flat_columns(df, reasons) for df in chunks), str(path))

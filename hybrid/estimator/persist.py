@@ -7,6 +7,7 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
+from hybrid.common.limits import upgrade_settings
 from hybrid.core.steps import Factors
 from hybrid.estimator.features import AttributeEncoder
 from hybrid.io.store import bad_file, read_manifest, write_model_file
@@ -99,7 +100,9 @@ def model_from_file(manifest: dict, a: dict, cls):
     F = Factors(a["user_blocks"], a["item_blocks"], a["map"], a["prior_precision"],
                 bool(manifest["biases"]), list(manifest["history"]), spread=a.get("prior_covariance"))
     return model.set_fitted(
-        settings_=manifest.get("settings"), features_=AttributeEncoder.from_state(manifest["features"]),
+        # files that keep a setting's old name read as if written with the new
+        settings_=upgrade_settings(manifest.get("settings")),
+        features_=AttributeEncoder.from_state(manifest["features"]),
         user_ids_=a["user_ids"], item_ids_=item_ids, ratings_=ratings, item_table_=table,
         attributes_=sp.csr_matrix((a["attr_data"], a["attr_indices"], a["attr_indptr"]),
                                   shape=tuple(a["attr_shape"])),

@@ -1,4 +1,4 @@
-"""Related items: the nearest items to a model's items, by distance between item vectors
+"""Related items: the neighbours of a model's items, the closest by distance between item vectors
 (the kernel is :func:`hybrid.core.neighbours.nearest`)."""
 from __future__ import annotations
 
@@ -25,7 +25,7 @@ def related(model, items, k: int = 5, metric: str = "euclidean", among=None,
 
     Returns
     -------
-    DataFrame with columns ``item``, ``rank`` (1 = nearest), ``neighbour``, ``distance``.
+    DataFrame with columns ``item``, ``position`` (1 = the closest), ``neighbour``, ``distance``.
 
     Examples
     --------
@@ -33,7 +33,7 @@ def related(model, items, k: int = 5, metric: str = "euclidean", among=None,
     >>> from hybrid.datasets.club import tasting_club
     >>> club = tasting_club(n_members=200, n_lots=40, n_new=2, seed=3)
     >>> m = HybridFactorModel(rank=3, epochs=3, schema=club.schema).fit(club.ratings, club.lots)
-    >>> related(m, ["L0001"], k=3)["rank"].tolist()
+    >>> related(m, ["L0001"], k=3)["position"].tolist()
     [1, 2, 3]
     """
     if not isinstance(k, (int, np.integer)) or k < 1:
@@ -52,5 +52,5 @@ def related(model, items, k: int = 5, metric: str = "euclidean", among=None,
     self_pos = pd.Index(ids[cand]).get_indexer(items)
     idx, dist = nearest(q, C, k, metric, exclude=self_pos)
     kk = idx.shape[1]
-    return pd.DataFrame({"item": np.repeat(items, kk), "rank": np.tile(np.arange(1, kk + 1), len(items)),
+    return pd.DataFrame({"item": np.repeat(items, kk), "position": np.tile(np.arange(1, kk + 1), len(items)),
                          "neighbour": ids[cand][idx.ravel()], "distance": dist.ravel()})

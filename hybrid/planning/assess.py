@@ -57,7 +57,7 @@ def user_design(model):
 class Assessor:
     """Evaluates stability of any items at any number of extra ratings, with fixed draws."""
 
-    def __init__(self, model, k=10, draws=64, seed=0, pool_min_ratings=20, responders="active",
+    def __init__(self, model, k=10, draws=64, seed=0, candidate_min_ratings=20, responders="active",
                  responder_threshold=None, pool=None):
         check_plan(k=k, draws=draws, seed=seed)   # k reaches a compiled kernel: never let 0 through
         self.model = model
@@ -73,7 +73,7 @@ class Assessor:
         # relative variance: share of the prior's spread the ratings have not yet removed
         rel = np.einsum("bii->b", vector_part(model, self.cov_now)) * vector_weight(model, self.weight) / prior_var
         self.relative_variance = rel
-        self.pool = self._pool(pool_min_ratings) if pool is None else np.asarray(pool)
+        self.pool = self._pool(candidate_min_ratings) if pool is None else np.asarray(pool)
         if len(self.pool) <= k:
             raise InputError(f"only {len(self.pool)} rated items can serve as neighbours; "
                              f"need more than k={k}: lower k")

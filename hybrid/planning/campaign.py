@@ -164,4 +164,4 @@ def choose_askees(B, cov, sigma2, n_asks, eligible, weight, asks_left):
 
 
 def asks_table(rows) -> pd.DataFrame:
-    return pd.DataFrame(rows, columns=["item", "user", "rank", "gain", "expected_rating"])
+    return pd.DataFrame(rows, columns=["item", "user", "order", "information", "expected_rating"])

@@ -10,6 +10,7 @@ opt-outs and local data-protection law.  Every number here is an estimate.
 """
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -72,7 +73,8 @@ _P = defaults("plan")   # plan()'s defaults, from the one table
 
 def plan(model, target=_P["target"], k=_P["k"], budget=None, per_user=None, priority=None, seed=_P["seed"], *,
          draws=_P["draws"], max_needed=_P["max_needed"], aim=_P["aim"], per_item=None, responders=_P["responders"],
-         responder_threshold=None, pool_min_ratings=_P["pool_min_ratings"], items=None, client=None) -> Plan:
+         responder_threshold=None, candidate_min_ratings=_P["candidate_min_ratings"], items=None, client=None,
+         pool_min_ratings=None) -> Plan:
     """Assess every item and, given a budget, plan a sampling campaign.
 
     Parameters
@@ -103,8 +105,10 @@ def plan(model, target=_P["target"], k=_P["k"], budget=None, per_user=None, prio
     responder_threshold : float, optional
         With ``'likely'``: the expected rating a user must reach to be asked (``LIKED``, 4.0,
         if not given).
-    pool_min_ratings : int
-        Ratings an item needs to be a neighbour candidate.
+    candidate_min_ratings : int
+        Ratings an item needs to be a candidate (an item other items' neighbour lists may hold).
+    pool_min_ratings : int, optional
+        The old name of ``candidate_min_ratings``, until the next release (a ``FutureWarning``).
     items : list of str, optional
         Assess and plan only these items (a launch batch, say); the neighbour
         candidates are still all the catalogue's trusted items.
@@ -125,12 +129,16 @@ def plan(model, target=_P["target"], k=_P["k"], budget=None, per_user=None, prio
     >>> sorted(p.items["status"].unique())[0] in ("no ratings yet", "trusted", "under-covered")
     True
     """
+    if pool_min_ratings is not None:   # the old name, for one release
+        warnings.warn("plan(pool_min_ratings=...) is now candidate_min_ratings; the old name works until the next "
+                      "release", FutureWarning, stacklevel=2)
+        candidate_min_ratings = pool_min_ratings
     check_plan(target=target, k=k, budget=budget, per_user=per_user, per_item=per_item, seed=seed,
                draws=draws, max_needed=max_needed, aim=aim, responders=responders,
-               responder_threshold=responder_threshold, pool_min_ratings=pool_min_ratings)
+               responder_threshold=responder_threshold, candidate_min_ratings=candidate_min_ratings)
     # 'likely' responders: those expected to rate at least the threshold (default LIKED)
     threshold = (LIKED if responder_threshold is None else responder_threshold) if responders == "likely" else None
-    A = Assessor(model, k, draws, seed, pool_min_ratings, responders, threshold)
+    A = Assessor(model, k, draws, seed, candidate_min_ratings, responders, threshold)
     if client is not None:
         A = ClusterAssessor(A, client)
     found = assess(A, _chosen(model, items), target, max_needed, curves=(aim == "gain"))
@@ -165,7 +173,7 @@ def plan_table(model, A: Assessor, found: Assessment, planned, weights, budget) 
         "stability_se": found.se, "needed": pd.array(np.where(np.isfinite(needed), needed, np.nan)).astype("Int64"),
         "needed_label": [f"{int(n)}" if np.isfinite(n) else f"more than {int(found.grid[-1])}" for n in needed],
         "planned": planned, "reaches_target": reaches, "priority": weights,
-        "in_pool": np.isin(chosen, A.pool), "relative_variance": A.relative_variance[chosen]})
+        "candidate": np.isin(chosen, A.pool), "relative_variance": A.relative_variance[chosen]})
     # on every row, so that any file format keeps it
     return table.assign(plan_target=float(target), plan_k=int(A.k), plan_budget=int(budget or 0),
                         model_fingerprint=model.fingerprint_)

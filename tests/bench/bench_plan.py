@@ -66,7 +66,7 @@ def main():
     print(f"trained {len(ratings):,} ratings in {time.perf_counter() - t0:.1f} s")
     covered = model.item_ids_[model.item_counts_ < 20]
     t0 = time.perf_counter()
-    result = plan(model, k=10, draws=64, pool_min_ratings=20, items=covered)
+    result = plan(model, k=10, draws=64, candidate_min_ratings=20, items=covered)
     seconds = time.perf_counter() - t0
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     items = result.items
