@@ -39,11 +39,12 @@ BITS = ("model_fingerprint",)   # a hash of the model's bits: another BLAS, anot
 # Then one word for one idea (README, "Words used here"): the demo's rating column is 'rating'
 # (was 'score'), the asks' 'rank' and 'gain' are 'order' and 'information', the plan's 'in_pool'
 # is 'candidate', related lists' 'rank' is 'position'; their values, and the model, unchanged.
+# Then the report speaks the club's nouns (lots, members; [display]) and says what statuses mean.
 EXPECTED = {
     'ratings.csv': 'eea280a750b723c5d90d0cc349b0f27c3b2b1f76c18e0df25b7545daad7cc3da',
     'lots.csv': 'bdfb0cb20b202edcea46229d9edefd90a40dd3bb2e0fb5718a06c33c7bfaf097',
     'new_lots.csv': '68b98f1b93427662cbfc47450620e2f50299c52a616cc5197cabdc8183819457',
-    'coffee.toml': '6835659ecc76b3b2f6ab215cfc33fd7d0d216f1b03f94f2a3255fb70acc43edc',
+    'coffee.toml': '7f78c64720daacff4bd46d9ea157b7e0e65c3b501f2b88b5c7f0fd1f89f88ddd',
     'new_lots_scored.csv item': '9caacee9caf510a5add6ab0b757ccfe456cc69bfdca906a50a8b7dba98c4d168',
     'new_lots_scored.csv name': '4ee88defe987d585a2920e718b49b12912816d682c9d9387737abad50ef5394c',
     'new_lots_scored.csv content_only': '8f78ae7486a61d3b862d2e39c4cdd41f315c1339787c9cc60d99df5e44d023d9',
@@ -126,7 +127,7 @@ EXPECTED = {
     'week1.csv member': '1c36d8d5207585554a9176fea4346cf6266f9397773a50a5c363d9da8be77679',
     'week1.csv lot': '681a3643d466e21c1476412df624344dec8fd57b27a99d5e23f8bd88e1d4023a',
     'week1.csv rating': '129:3.725252e+01:10.724108:37.252517:0.153224',
-    'report.html': '38b25415e83621808c054ba18b4e897d8c99898a8bff9937fcc1568e547e6f90',
+    'report.html': 'ca613c2cc6a048e3f32e14f9afc123752334af5493afdba91990ac47d768a784',
     'model array user_ids': 'e4614767415322ceb427e71e576c18f263cb56e57405f5182e9bd1c85809ec56',
     'model array item_ids': 'c8c6e6a6ce558a68207992665e72539d79f1bd623bdb098b941ea642f2b21b8d',
     'model array user_blocks': '17586:1.735272e+01:0.159888:17.352715:0.028540',

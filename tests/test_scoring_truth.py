@@ -60,8 +60,8 @@ def test_an_edited_rated_item_keeps_its_fitted_score_and_is_flagged(club_model, 
     assert done.exit_code == 0, done.output
     notes = [line for line in done.stderr.splitlines() if line.startswith("note: ")]
     edited_note = [line for line in notes if "have ratings in the model" in line]
-    assert len(edited_note) == 1 and edited_note[0].startswith("note: 1 item(s) have ratings in the model")
-    assert any("column 'price': 1 item(s) outside the training range" in line for line in notes)   # x3
+    assert len(edited_note) == 1 and edited_note[0].startswith("note: 1 lot(s) have ratings in the model")   # the club says lots
+    assert any("column 'price': 1 lot(s) outside the training range" in line for line in notes)   # x3
     out = pd.read_csv(tmp_path / "s.csv", dtype={"item": str}).set_index("item")
     assert bool(out.loc[rated, "attributes_changed"]) and int(out["attributes_changed"].sum()) == 1
 

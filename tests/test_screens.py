@@ -7,6 +7,7 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
+from hybrid.app.nouns import speak
 from hybrid.cli import app
 from hybrid.cli.display import decimals, for_people
 
@@ -57,8 +58,12 @@ def check_numbers(screen: str, records: list[dict]) -> int:
     return compared
 
 
+# the demo's settings speak of lots and members ([display]); the machine output keeps the fields
+CLUB = {"item": "lot", "user": "member"}
+
+
 def for_people_heading(field: str) -> str:
-    return list(for_people(pd.DataFrame({field: [1.5]})).columns)[0]
+    return speak(list(for_people(pd.DataFrame({field: [1.5]})).columns)[0], CLUB)
 
 
 def check_mapping(screen: str, values: dict) -> int:
@@ -72,6 +77,7 @@ def check_mapping(screen: str, values: dict) -> int:
             rows[last] += " " + v
     compared = 0
     for key, value in values.items():
+        key = speak(key, CLUB)
         if isinstance(value, (int, float)) and not isinstance(value, bool):
             assert _close(rows[key], float(value)) or float(rows[key].replace(",", "")) == pytest.approx(value, rel=5e-4)
             compared += 1
@@ -135,7 +141,9 @@ def test_a_column_keeps_one_count_of_decimals():
     ["report", "{d}/club.hybrid", "--out", "{d}/r.html"],
     ["calibrate", "{d}/ratings.csv", "{d}/lots.csv", "--config", "{d}/coffee.toml", "--probes", "20"],
     ["score", "{d}/club.hybrid", "{d}/new_lots.csv", "--out", "{d}/s2.csv", "--chunk", "5"],
-], ids=["plan", "report", "calibrate", "score"])
+    ["evaluate", "{d}/ratings.csv", "{d}/lots.csv", "--config", "{d}/coffee.toml", "--folds", "2"],
+    ["demo", "{d}/again"],
+], ids=["plan", "report", "calibrate", "score", "evaluate", "demo"])
 def test_piped_output_carries_no_progress(demo, args):
     done = CliRunner().invoke(app, [a.format(d=demo) for a in args])
     assert done.exit_code == 0, done.output
@@ -204,3 +212,26 @@ def test_screens_files_and_help_use_the_glossary_words(demo):
     related = json.loads(CliRunner().invoke(app, ["related", f"{d}/club.hybrid", "L0042", "--format", "json"]).stdout)
     assert list(related[0]) == ["item", "position", "neighbour", "distance"]
     assert pd.read_csv(demo / "ratings.csv", nrows=1).columns.tolist() == ["member", "lot", "rating"]
+
+
+def test_screens_and_the_report_speak_the_catalogues_nouns_files_keep_theirs(demo):
+    # the demo's settings say [display] item = "lot", user = "member" (its model keeps them)
+    d = str(demo)
+    screen = run(["plan", f"{d}/club.hybrid", "--budget", "20", "--out", f"{d}/n.csv", "--asks", f"{d}/na.csv"],
+                 "table")
+    assert "lots reaching target with the plan" in screen and "┃ lot " in screen
+    assert not re.search(r"\bitems?\b", screen.split("Under-covered")[0])
+    summary = json.loads(run(["plan", f"{d}/club.hybrid", "--budget", "20", "--out", f"{d}/n.csv"], "json"))
+    assert "items reaching target with the plan" in summary            # machines keep the field names
+    assert pd.read_csv(f"{d}/na.csv").columns[:2].tolist() == ["item", "user"]
+    assert "members" in run(["inspect", f"{d}/club.hybrid"], "table")
+    page = (demo / "report.html").read_text()
+    assert "<h2>New lots</h2>" in page and "<h2>New items</h2>" not in page
+    # a model trained without a [display] section speaks of items and users
+    done = CliRunner().invoke(app, ["train", f"{d}/ratings.csv", f"{d}/lots.csv", "--config", "configs/coffee.toml",
+                                    "--out", f"{d}/plain.hybrid", "--quiet"])
+    assert done.exit_code == 0
+    from hybrid import load
+    from hybrid.app.nouns import nouns_of
+    assert nouns_of(load(f"{d}/plain.hybrid").settings_) == {"item": "lot", "user": "member"}
+    assert nouns_of({"plan": {}}) == {"item": "item", "user": "user"}

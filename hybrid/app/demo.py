@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 
 from hybrid.app.config import load_config
+from hybrid.app.nouns import nouns_of
 from hybrid.datasets.club import DEMO_CONFIG, tasting_club, write_sample_database, write_samples
 
 
@@ -92,7 +93,8 @@ def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):
     paths["report"] = folder / "report.html"
     with atomic_path(paths["report"]) as tmp:
         tmp.write_text(build_report(model, p.items, k=cfg["plan"]["k"], target=cfg["plan"]["target"],
-                                    liked=cfg["score"]["liked"], interval=cfg["score"]["interval"]),
+                                    liked=cfg["score"]["liked"], interval=cfg["score"]["interval"],
+                                    nouns=nouns_of(cfg)),
                        encoding="utf-8")
     s = p.summary()
     items = p.items

@@ -14,6 +14,8 @@ import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
 
+from hybrid.app.nouns import GENERIC, speak_html
+from hybrid.app.workflows import STATUS_WORDS
 from hybrid.common.errors import InputError, did_you_mean
 from hybrid.core.neighbours import nearest
 from hybrid.estimator.batch import name_like
@@ -135,6 +137,7 @@ def coverage_section(model, items, by):
         f"the most-rated has {int(counts.max())}.", f"{zero} items have no ratings yet.")]
     status = items["status"].value_counts().reindex(list(STATUS), fill_value=0)
     parts.append(_table(status.rename_axis("status").reset_index(name="items"), "status-counts"))
+    parts.append(f'<p class="status-words">{html.escape(STATUS_WORDS)}</p>')
     table = getattr(model, "item_table_", None)
     if by is not None and table is not None:
         groups = _groups(table[by].reindex(items["item"]))
@@ -249,10 +252,11 @@ def new_items_section(model, items, liked, k=3, interval=0.8):
 
 
 def build_report(model, items: pd.DataFrame, *, k=10, target=0.8, draws=64, seed=0, by=None, liked=4.0,
-                 interval=0.8, title="Catalogue coverage and sampling plan") -> str:
+                 interval=0.8, title="Catalogue coverage and sampling plan", nouns=None) -> str:
     """The whole HTML page for a model and a plan's item table (``Plan.items``).
 
-    A plan's own target and k (its ``plan_*`` columns) win over ``target`` and ``k``, so the
+    ``nouns`` (:func:`hybrid.app.nouns.nouns_of`) puts the catalogue's words in its headings and
+    prose.  A plan's own target and k (its ``plan_*`` columns) win over ``target`` and ``k``, so the
     page's curves are drawn against what the plan was made for.
     """
     check_by(model, by)
@@ -272,6 +276,6 @@ def build_report(model, items: pd.DataFrame, *, k=10, target=0.8, draws=64, seed
             map_section(model, items), training_section(model),
             new_items_section(model, items, liked, interval=interval),
             f'<h2>Cautions</h2><p class="caution">{html.escape(CAUTIONS)}</p>']
-    return ("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
-            f"<title>{html.escape(title)}</title><style>{STYLE}</style></head><body>"
-            + "\n".join(body) + f"<script>{SORTING}</script></body></html>")
+    return speak_html("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
+                      f"<title>{html.escape(title)}</title><style>{STYLE}</style></head><body>"
+                      + "\n".join(body) + f"<script>{SORTING}</script></body></html>", nouns or GENERIC)

@@ -18,8 +18,10 @@ from rich.table import Table
 from sklearn.exceptions import ConvergenceWarning
 from typer.core import TyperArgument, TyperCommand
 
+from hybrid.app.nouns import GENERIC, nouns_of, speak
 from hybrid.common.errors import InputError
 from hybrid.common.limits import SETTINGS
+from hybrid.estimator.oddities import OddInputWarning
 
 FORMATS = ("table", "csv", "json")
 
@@ -44,6 +46,17 @@ class Command(TyperCommand):
     def get_short_help_str(self, limit: int = 45) -> str:
         first = (self.help or "").strip().split("\n\n")[0]
         return " ".join(first.split())
+
+
+# the catalogue's nouns for this command's screens (``[display]``): set by each command once its
+# settings are known, reset to the generic ones when a command starts
+_NOUNS = dict(GENERIC)
+
+
+def use_nouns(cfg) -> None:
+    """Speak the catalogue's words (``[display] item``, ``user``) on this command's screens."""
+    _NOUNS.clear()
+    _NOUNS.update(nouns_of(cfg))
 
 
 # what a table argument may be (files by ending; a database by URL, hybrid.io.database)
@@ -77,6 +90,7 @@ def _notes():
     two-line form with a source path."""
     with warnings.catch_warnings():
         warnings.filterwarnings("always", category=ConvergenceWarning)
+        warnings.filterwarnings("always", category=OddInputWarning)   # every run says what looks odd
         warnings.showwarning = lambda message, category, *rest, **kw: note(str(message))
         yield
 
@@ -85,6 +99,7 @@ def guarded(fn):
     """Turn bad input into one clear line on stderr and exit code 2 (no traceback)."""
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
+        use_nouns(None)
         try:
             with _notes():
                 return fn(*args, **kwargs)
@@ -102,7 +117,7 @@ def guarded(fn):
 
 def note(text: str) -> None:
     """One line on stderr about something the user should know (not an error)."""
-    print(f"note: {text}", file=sys.stderr)
+    print(f"note: {speak(text, _NOUNS)}", file=sys.stderr)
 
 
 def check_format(fmt: str) -> str:
@@ -160,10 +175,13 @@ def for_people(df: pd.DataFrame) -> pd.DataFrame:
 
 
 _UPPER = {"rmse": "RMSE", "mae": "MAE", "ndcg10": "NDCG@10", "id": "id"}
+_NAMED = {"lam_user": "user penalty", "lam_item": "item penalty", "lam_map": "map penalty"}
 
 
 def _words(name) -> str:
     """A field name as words for a heading: ``valid_rmse`` -> ``valid RMSE``."""
+    if str(name) in _NAMED:
+        return _NAMED[str(name)]
     return " ".join(_UPPER.get(w.lower(), w) for w in str(name).replace("_", " ").split())
 
 
@@ -209,6 +227,8 @@ def emit(df: pd.DataFrame, fmt: str = "table", title: str | None = None) -> None
         sys.stdout.write(df.to_json(orient="records", double_precision=10) + "\n")
         return
     shown = for_people(df)
+    shown.columns = [speak(c, _NOUNS) for c in shown.columns]   # headings in the catalogue's words
+    title = None if title is None else speak(title, _NOUNS)
     console = Console(soft_wrap=False)
     numeric = {c: all(_is_number(v) or v == "" for v in shown[c]) and any(shown[c]) for c in shown.columns}
     least = {c: _least_width(shown[c], c, numeric[c]) for c in shown.columns}
@@ -231,13 +251,19 @@ def emit_mapping(values: dict, fmt: str, title: str) -> None:
     if fmt == "json":
         sys.stdout.write(json.dumps(values, default=str, indent=2) + "\n")
         return
-    emit(pd.DataFrame({"what": list(values), "value": [_cell(v) for v in values.values()]}), fmt, title)
+    if fmt != "table":
+        emit(pd.DataFrame({"what": list(values), "value": [_cell(v) for v in values.values()]}), fmt, title)
+        return
+    emit(pd.DataFrame({"what": [speak(k, _NOUNS) for k in values],
+                       "value": [speak(v, _NOUNS) if isinstance(v, str) else _cell(v) for v in values.values()]}),
+         fmt, title)
 
 
 def say(text: str = "") -> None:
     """A line of text for people on stdout, wrapped to the terminal (a line that starts with
     spaces keeps them on every wrapped line)."""
     width = shutil.get_terminal_size((80, 24)).columns
+    text = speak(text, _NOUNS)
     indent = text[:len(text) - len(text.lstrip(" "))]
     typer.echo(textwrap.fill(text, width=max(width, 40), subsequent_indent=indent + "  " if indent else "",
                              break_long_words=False, break_on_hyphens=False) if text else "")

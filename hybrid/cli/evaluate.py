@@ -8,7 +8,7 @@ from typing import Optional
 import typer
 
 from hybrid.app.config import load_config, model_params
-from hybrid.cli.display import TABLE_HELP, CountProgress, check_format, emit, say
+from hybrid.cli.display import TABLE_HELP, CountProgress, check_format, emit, say, use_nouns
 from hybrid.common.errors import InputError
 from hybrid.io.outputs import atomic_path, check_output
 from hybrid.io.tables import read_training_tables
@@ -16,6 +16,7 @@ from hybrid.io.tables import read_training_tables
 
 def _inputs(ratings, attributes, config):
     cfg = load_config(config)
+    use_nouns(cfg)
     params = model_params(cfg)
     table, attrs = read_training_tables(ratings, attributes, cfg, params["schema"])
     return cfg, params, table, attrs

@@ -30,6 +30,7 @@ from hybrid.cli.display import (
     note,
     say,
     setting_help,
+    use_nouns,
 )
 from hybrid.common.errors import InputError, did_you_mean, did_you_mean_id
 from hybrid.estimator.model import HybridFactorModel
@@ -72,6 +73,7 @@ def train(ratings: str = typer.Argument(..., help="Ratings table" + TABLE_HELP),
     check_format(format)
     check_model_output(out)
     cfg = with_engine(load_config(config), engine, address, partitions)
+    use_nouns(cfg)
     with EpochProgress(model_params(cfg)["epochs"], quiet) as progress:
         model = train_model(ratings, attributes, cfg, on_epoch=progress)
     model.save(out)
@@ -153,6 +155,7 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
     check_output(out)
     model = HybridFactorModel.load(model_file)
     cfg = settings_for(model, config)
+    use_nouns(cfg)
     where = with_engine(load_config(config), engine, address)  # where to run is not the model's
     attrs = read_attributes(new_items, cfg, model.features_.spec(), require_all=False)
     kept = name_like(attrs.columns) if keep is None else [c.strip() for c in keep.split(",") if c.strip()]
@@ -189,6 +192,7 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
 def _describing(model, item: str, new_items: Optional[Path]):
     """The attribute table of ``--new-items`` (or None), once ``item`` is known to be in the model or in it."""
     attrs = None
+    use_nouns(settings_for(model, None))
     if new_items is not None:
         attrs = read_attributes(new_items, settings_for(model, None), model.features_.spec(), require_all=False)
     if item not in set(model.item_ids_) and (attrs is None or item not in set(attrs.index)):
@@ -263,6 +267,7 @@ def inspect(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model 
     """
     check_format(format)
     model = HybridFactorModel.load(model_file)
+    use_nouns(settings_for(model, None))
     info = _summary(model)
     params = model.get_params()
     info.update({f"setting {k}": v for k, v in params.items() if k != "schema"})
@@ -284,7 +289,10 @@ def demo(folder: Path = typer.Argument(Path("demo-out"), help="Folder for the de
     Example: hybrid demo demo-out
     """
     from hybrid.app.demo import run_demo
-    run_demo(folder, seed=seed, say=say)
+    from hybrid.datasets.club import DEMO_CONFIG
+    use_nouns(load_config(DEMO_CONFIG))   # the club's words: lots and members
+    with CountProgress(None, "running the demo"):   # its story prints above the spinner
+        run_demo(folder, seed=seed, say=say)
 
 
 from hybrid.cli.plan import (  # noqa: E402

@@ -7,6 +7,7 @@ from typing import Optional
 import typer
 
 from hybrid.app.config import load_config, model_params, settings_for, with_engine
+from hybrid.app.nouns import nouns_of
 from hybrid.app.workflows import CAUTION, STATUS_WORDS, plan_arguments
 from hybrid.cli.display import (
     ADDRESS_HELP,
@@ -18,6 +19,7 @@ from hybrid.cli.display import (
     emit_mapping,
     say,
     setting_help,
+    use_nouns,
 )
 from hybrid.common.errors import InputError
 from hybrid.estimator.model import HybridFactorModel
@@ -61,6 +63,7 @@ def plan_command(
             check_output(path)
     model = HybridFactorModel.load(model_file)
     cfg = settings_for(model, config)
+    use_nouns(cfg)
     if new_items is not None:
         model.add_items(read_attributes(new_items, cfg, model.features_.spec(), require_all=False))
     chosen = None if only is None else read_item_list(only, cfg, model.item_ids_)
@@ -102,6 +105,7 @@ def update_command(
     check_model_output(out)
     model = HybridFactorModel.load(model_file)
     cfg = settings_for(model, config)
+    use_nouns(cfg)
     table = read_ratings(new_ratings, cfg)
     attrs = None
     if new_items is not None:
@@ -133,6 +137,7 @@ def calibrate_command(
 
     check_format(format)
     cfg = load_config(config)
+    use_nouns(cfg)
     params = model_params(cfg)
     table, attrs = read_training_tables(ratings, attributes, cfg, params["schema"])
     params["holdout"] = 0.0
@@ -159,6 +164,7 @@ def report_command(
     check_output(out, "report")
     model = HybridFactorModel.load(model_file)
     cfg = settings_for(model, config)
+    use_nouns(cfg)
     p = cfg["plan"]
     with CountProgress(None, "writing the report", quiet=quiet):
         items = read_plan(plan_file) if plan_file is not None else plan(model, **plan_arguments(cfg)).items
@@ -167,7 +173,7 @@ def report_command(
             raise InputError(f"the plan lists item '{sorted(unknown)[0]}', which the model does not know",
                              file=str(plan_file))
         page = build_report(model, items, k=p["k"], target=p["target"], draws=p["draws"], seed=p["seed"], by=by,
-                            liked=cfg["score"]["liked"], interval=cfg["score"]["interval"])
+                            liked=cfg["score"]["liked"], interval=cfg["score"]["interval"], nouns=nouns_of(cfg))
     with atomic_path(out) as tmp:
         tmp.write_text(page, encoding="utf-8")
     say(f"report written to {out} ({len(page) / 1e6:.2f} MB)")

@@ -170,6 +170,12 @@ SETTINGS = {
         "per_user": S(None, _whole(1), "most asks per user", in_file=False),
         "per_item": S(None, _whole(1), "most ratings planned per item", in_file=False),
     },
+    "display": {
+        "item": S("item", ((lambda v: isinstance(v, str) and v.strip() != ""), "a word"),
+                  'what screens and the report call an item (e.g. "lot", "product"); files keep "item"'),
+        "user": S("user", ((lambda v: isinstance(v, str) and v.strip() != ""), "a word"),
+                  'what screens and the report call a user (e.g. "member", "customer"); files keep "user"'),
+    },
     "engine": {
         "kind": S("local", _one_of("local", "dask"),
                   'where training, planning and scoring run: "local" (this process) or "dask"'),
