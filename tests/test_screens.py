@@ -235,3 +235,19 @@ def test_screens_and_the_report_speak_the_catalogues_nouns_files_keep_theirs(dem
     from hybrid.app.nouns import nouns_of
     assert nouns_of(load(f"{d}/plain.hybrid").settings_) == {"item": "lot", "user": "member"}
     assert nouns_of({"plan": {}}) == {"item": "item", "user": "user"}
+
+
+def test_help_speaks_the_catalogues_words_when_its_settings_are_given():
+    # in a real process: the help reads --config from the command line it was given
+    import os
+    import subprocess
+    import sys
+
+    def helped(*args):
+        return subprocess.run([sys.executable, "-m", "hybrid", "plan", *args, "--help"], capture_output=True,
+                              text=True, env={**os.environ, "COLUMNS": "100"}, timeout=120).stdout
+
+    club, plain = helped("--config", "configs/coffee.toml"), helped()
+    assert "which lots are under-covered" in club and "Most asks per member" in club
+    assert "--per-user" in club and "--new-items" in club          # flags keep their names
+    assert "which items are under-covered" in plain and "lots" not in plain

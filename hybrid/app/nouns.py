@@ -9,7 +9,8 @@ from __future__ import annotations
 import re
 
 GENERIC = {"item": "item", "user": "user"}
-_WORD = re.compile(r"\b(item|user|Item|User)(s?)\b")
+# a whole word: not part of a flag, a field or a file name (--per-user, new_items, lot-item)
+_WORD = re.compile(r"(?<![-\w])(item|user|Item|User)(s?)(?![-\w])")
 
 
 def nouns_of(cfg: dict | None) -> dict:
@@ -24,8 +25,8 @@ def speak(text: str, nouns: dict) -> str:
 
     >>> speak("3 items have no ratings; Users asked: 5", {"item": "lot", "user": "member"})
     '3 lots have no ratings; Members asked: 5'
-    >>> speak("new_items and item_id stay", {"item": "lot", "user": "member"})
-    'new_items and item_id stay'
+    >>> speak("new_items, item_id and --per-user stay", {"item": "lot", "user": "member"})
+    'new_items, item_id and --per-user stay'
     """
     if nouns == GENERIC:
         return text

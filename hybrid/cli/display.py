@@ -43,6 +43,21 @@ class Command(TyperCommand):
                 pieces.append(param.metavar if param.required else f"[{param.metavar}]")
         return pieces
 
+    def get_help(self, ctx) -> str:
+        """The help, in the catalogue's words when a settings file is given on the same line
+        (``hybrid plan --config coffee.toml --help`` speaks of lots and members)."""
+        text = super().get_help(ctx)
+        args = sys.argv[1:] if ctx.parent is not None else []
+        given = [args[j + 1] for j, a in enumerate(args[:-1]) if a == "--config"]
+        given += [a.split("=", 1)[1] for a in args if a.startswith("--config=")]
+        if given:
+            from hybrid.app.config import load_config
+            try:
+                return speak(text, nouns_of(load_config(given[-1])))
+            except InputError:   # a settings file that does not load: the command will say so
+                return text
+        return text
+
     def get_short_help_str(self, limit: int = 45) -> str:
         first = (self.help or "").strip().split("\n\n")[0]
         return " ".join(first.split())
