@@ -178,6 +178,7 @@ def commands(F: Files, out: Path) -> list[Command]:
                 {"--target": _float_ok(lambda v: 0 < v <= 1), "--k": _k_ok(str(F["model"])), "--budget": _int_ok(0),
                  "--per-user": _int_ok(1), "--per-item": _int_ok(1),
                  "--priority": _choice_ok("margin", "price", "altitude_m"), "--aim": _choice_ok("reach", "gain"),
+                 "--max-needed": _int_ok(1),
                  "--engine": _choice_ok(*ENGINES), "--format": _choice_ok(*FORMATS)},
                 {1: "model", "--new-items": "new_lots", "--items": "new_lots", "--config": "config"},
                 {"--out": ".csv", "--asks": ".csv"}),

@@ -203,3 +203,19 @@ def test_likely_responders_work_for_a_library_model(club):
     active = plan(m, k=5, draws=8).items
     assert likely["stability"].equals(active["stability"])           # stability now does not depend on it
     assert (likely["needed"].dropna() >= 0).all() and len(likely) == len(active)
+
+
+def test_the_summary_counts_what_the_plan_adds(club):
+    m = HybridFactorModel(rank=4, epochs=10, schema=club.schema, text_min_df=1).fit(club.ratings, club.lots)
+    p = plan(m, k=5, draws=16, budget=60, aim="gain")
+    s = p.summary()
+    items = p.items
+    assert s["more items reaching the target with the plan"] == int(
+        (items["reaches_target"] & (items["status"] != "trusted")).sum())
+    # the gain read off the curves by hand: each item's stability at its planned ratings, less now
+    by_hand = 0.0
+    for row in items.itertuples():
+        curve = p.curves.loc[row.item]
+        by_hand += np.interp(row.planned, np.asarray(curve.index, float), curve.to_numpy()) - curve.iloc[0]
+    assert s["stability gained in all"] == pytest.approx(by_hand, abs=1e-4) and by_hand > 0
+    assert "stability gained in all" not in plan(m, k=5, draws=16, budget=60).summary()   # no curves

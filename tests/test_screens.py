@@ -69,12 +69,14 @@ def for_people_heading(field: str) -> str:
 def check_mapping(screen: str, values: dict) -> int:
     table = read_screen_table(screen)
     what, shown = table["what"], table["value"]
-    rows = {}
-    for w, v in zip(what, shown):     # a wrapped row continues on the next line with a blank 'what'
-        if w:
-            rows[w], last = v, w
+    pairs = []
+    for w, v in zip(what, shown):     # a wrapped row continues on the next lines, one cell blank
+        if w and (v or not pairs):
+            pairs.append([w, v])
         else:
-            rows[last] += " " + v
+            pairs[-1][0] += (" " + w) if w else ""
+            pairs[-1][1] += (" " + v) if v else ""
+    rows = dict(pairs)
     compared = 0
     for key, value in values.items():
         key = speak(key, CLUB)
@@ -219,10 +221,10 @@ def test_screens_and_the_report_speak_the_catalogues_nouns_files_keep_theirs(dem
     d = str(demo)
     screen = run(["plan", f"{d}/club.hybrid", "--budget", "20", "--out", f"{d}/n.csv", "--asks", f"{d}/na.csv"],
                  "table")
-    assert "lots reaching target with the plan" in screen and "┃ lot " in screen
+    assert "more lots reaching the target with" in screen and "┃ lot " in screen   # (the key wraps at 80)
     assert not re.search(r"\bitems?\b", screen.split("Under-covered")[0])
     summary = json.loads(run(["plan", f"{d}/club.hybrid", "--budget", "20", "--out", f"{d}/n.csv"], "json"))
-    assert "items reaching target with the plan" in summary            # machines keep the field names
+    assert "more items reaching the target with the plan" in summary            # machines keep the field names
     assert pd.read_csv(f"{d}/na.csv").columns[:2].tolist() == ["item", "user"]
     assert "members" in run(["inspect", f"{d}/club.hybrid"], "table")
     page = (demo / "report.html").read_text()
@@ -251,3 +253,18 @@ def test_help_speaks_the_catalogues_words_when_its_settings_are_given():
     assert "which lots are under-covered" in club and "Most asks per member" in club
     assert "--per-user" in club and "--new-items" in club          # flags keep their names
     assert "which items are under-covered" in plain and "lots" not in plain
+
+
+def test_a_reader_that_stops_early_is_no_error(demo):
+    # `hybrid score ... | true`: the reader is gone before the table is printed (the pipe is closed
+    # by the time Python has started); the scores file is written and nothing is said (no "error:
+    # broken pipe; nothing was written", which was untrue)
+    import subprocess
+    import sys
+
+    out = demo / "piped.csv"
+    done = subprocess.run(f"'{sys.executable}' -m hybrid score '{demo}/club.hybrid' '{demo}/new_lots.csv' "
+                          f"--out '{out}' | true", shell=True, executable="/bin/bash", capture_output=True,
+                          text=True, timeout=120)
+    assert done.stderr == "", done.stderr
+    assert len(pd.read_csv(out)) == len(pd.read_csv(demo / "new_lots.csv"))

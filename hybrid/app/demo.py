@@ -105,6 +105,6 @@ def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):
         say(f"  Of the lots not yet trusted, {len(reach)} can get there within {cfg['plan']['max_needed']} more "
             f"ratings (median {int(reach['needed'].median())}); the rest need more than that.")
     say(f"  A {budget}-rating campaign weighted by margin, at most {per_user} asks per member, would bring "
-        f"{s['items reaching target with the plan'] - s['trusted']} more lots to the target "
+        f"{s['more items reaching the target with the plan']} more lots to the target "
         f"({s['asks']} asks to {p.asks['user'].nunique()} members).")
     say(f"  {CAUTION}")

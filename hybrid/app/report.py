@@ -231,7 +231,7 @@ def new_items_section(model, items, liked, k=3, interval=0.8):
     z = model.blocks_for_items(new)
     idx, dist = nearest(z[:, off:], model.item_blocks_[rated, off:], k)
     blocks = [model.clip(b) for _, b in model.score_blocks(z, 512)]
-    why, iv = reasons(model, new), intervals(model, new, level=interval)
+    why, iv = reasons(model, new), intervals(model, new, level=interval, blocks=z)
     expected = np.concatenate([b.mean(1) for b in blocks])
     shift = expected - iv["centre"].to_numpy()   # the interval is the mean user's, carried over
     low, high = (np.clip(iv[end].to_numpy() + shift, *model.rating_range_) for end in ("low", "high"))

@@ -5,6 +5,7 @@ import contextlib
 import functools
 import io
 import json
+import os
 import shutil
 import sys
 import textwrap
@@ -120,6 +121,13 @@ def guarded(fn):
                 return fn(*args, **kwargs)
         except InputError as exc:
             fail(str(exc))
+        except BrokenPipeError:
+            # the reader of our output went away (``| head``): the files were written before
+            # the screen, so nothing is lost; stop without a word (and without Python's own
+            # complaint when it flushes the closed pipe at exit)
+            with contextlib.suppress(OSError, ValueError):
+                os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+            raise SystemExit(0) from None
         except (FileNotFoundError, PermissionError, IsADirectoryError) as exc:
             fail(f"{exc.filename}: {exc.strerror.lower()}")
         except OSError as exc:   # a full disk, a quota, a device gone: the output was not replaced

@@ -39,6 +39,7 @@ def plan_command(
         per_item: Optional[int] = typer.Option(None, "--per-item", help=setting_help("plan", "per_item")),
         priority: Optional[str] = typer.Option(None, "--priority", help="Attribute column of item priority."),
         aim: Optional[str] = typer.Option(None, "--aim", help=setting_help("plan", "aim")),
+        max_needed: Optional[int] = typer.Option(None, "--max-needed", help=setting_help("plan", "max_needed")),
         new_items: Optional[str] = typer.Option(None, "--new-items", help="Attribute table of unrated items to include" + TABLE_HELP),
         only: Optional[str] = typer.Option(None, "--items", help="Plan only the items in this table's item column" + TABLE_HELP),
         config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
@@ -70,7 +71,8 @@ def plan_command(
     with engine_client(with_engine(load_config(config), engine, address)) as client, \
             CountProgress(None, f"planning {len(model.item_ids_) if chosen is None else len(chosen)} items",
                           quiet=quiet):
-        result = plan(model, **plan_arguments(cfg, target=target, k=k, aim=aim), budget=budget,
+        result = plan(model, **plan_arguments(cfg, target=target, k=k, aim=aim, max_needed=max_needed),
+                      budget=budget,
                       per_user=per_user, priority=priority, per_item=per_item, items=chosen, client=client)
     write_table(result.items, out)
     if asks is not None:
@@ -79,10 +81,17 @@ def plan_command(
     summary.update({"candidates": f"{result.settings['pool_size']} ({result.settings['pool_rule']})"})
     emit_mapping(summary, format, f"plan written to {out}")
     if format == "table":
-        top = result.items[result.items["status"] != "trusted"].sort_values(
-            ["needed", "stability"], ascending=[False, True], na_position="first").head(10)
-        emit(top[["item", "status", "ratings", "stability", "needed_label", "planned"]].rename(
-            columns={"needed_label": "ratings needed"}), "table", "the items that need the most")
+        items = result.items
+        bought = items[items["planned"] > 0]
+        if len(bought):   # what the budget buys: the items it gives ratings to, most first
+            top = bought.sort_values(["planned", "stability"], ascending=[False, True]).head(10)
+            title = f"the items the budget buys ({len(bought)}; the first 10 by ratings planned)"
+        else:
+            top = items[items["status"] != "trusted"].sort_values(
+                ["needed", "stability"], ascending=[False, True], na_position="first").head(10)
+            title = "the items that need the most (no budget given: --budget N plans)"
+        emit(top[["item", "status", "ratings", "stability", "needed_label", "planned", "reaches_target"]].rename(
+            columns={"needed_label": "ratings needed", "reaches_target": "reaches the target"}), "table", title)
         say(STATUS_WORDS)
         say(CAUTION)
 

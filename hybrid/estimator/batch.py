@@ -138,7 +138,7 @@ def _score_chunk(shared, part, known, notes):
     nidx, ndist = nearest(z[:, off:], model.item_blocks_[rated, off:], shared.neighbours, exclude=self_pos) \
         if shared.neighbours else (np.zeros((len(z), 0), int), np.zeros((len(z), 0)))
     why = reasons(model, ids, part, clip_numbers=shared.clip_numbers)
-    iv = intervals(model, ids, part, level=shared.interval, clip_numbers=shared.clip_numbers)
+    iv = intervals(model, ids, part, level=shared.interval, blocks=z)
     expected = block.mean(axis=1)
     # the interval is the mean user's; it is carried to the expected rating by its offset
     shift = expected - iv["centre"].to_numpy()

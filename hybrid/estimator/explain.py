@@ -81,24 +81,30 @@ def mean_user(model, users=None):
     return base, (np.concatenate([[1.0], g]) if ub is not None else g)
 
 
-def item_rows(model, items, attributes=None, clip_numbers=True):
-    """For ``items``: their attribute rows (a file row for an unrated item that has one, else the
-    model's), their positions in the model (-1 if unknown) and whether each is rated."""
+def item_positions(model, items, attributes=None):
+    """For ``items``: their positions in the model (-1 if unknown), whether each is rated, and
+    whether each is scored from a row of ``attributes`` (an unrated item that has one)."""
     items = np.asarray(items, dtype=str)
     pos = pd.Index(model.item_ids_).get_indexer(items)
     rated = (pos >= 0) & (model.item_counts_[np.maximum(pos, 0)] > 0)
     has_row = np.zeros(len(items), bool) if attributes is None else np.isin(items, attributes.index.astype(str))
     if ((pos < 0) & ~has_row).any():
         raise InputError(f"item '{items[(pos < 0) & ~has_row][0]}' is not in the model and has no attribute row")
-    from_row = has_row & ~rated
+    return pos, rated, has_row & ~rated
+
+
+def item_rows(model, items, attributes=None, clip_numbers=True):
+    """For ``items``: their attribute rows (a file row for an unrated item that has one, else the
+    model's), their positions in the model (-1 if unknown) and whether each is rated."""
+    items = np.asarray(items, dtype=str)
+    pos, rated, from_row = item_positions(model, items, attributes)
     A = model.attributes_[np.maximum(pos, 0)]
     if from_row.any():   # the file's rows in place of the model's, by one sparse product
         fresh = model.features_.transform(attributes.loc[items[from_row]], clip_numbers=clip_numbers)
         place = sp.csr_matrix((np.ones(fresh.shape[0]), (np.flatnonzero(from_row), np.arange(fresh.shape[0]))),
                               shape=(len(items), fresh.shape[0]))
         A = sp.diags((~from_row).astype(float)) @ A + place @ fresh
-    A = sp.csr_matrix(A)
-    return A, pos, rated
+    return sp.csr_matrix(A), pos, rated
 
 
 def reasons(model, items, attributes=None, *, clip_numbers=True) -> Reasons:
@@ -137,10 +143,10 @@ def reasons(model, items, attributes=None, *, clip_numbers=True) -> Reasons:
     return Reasons(baseline, effects, moved, readable_names(model.features_))
 
 
-def block_covariances(model, items, attributes=None):
-    """Each item's block covariance (n, d, d): the learned prior's spread for an item scored from
-    its attributes, the Gaussian posterior given its ratings for a rated one."""
-    _, pos, rated = item_rows(model, items, attributes)
+def block_covariances(model, pos, rated):
+    """The block covariance (n, d, d) of the items at ``pos`` (:func:`item_positions`): the
+    learned prior's spread for an item scored from its attributes, the Gaussian posterior given
+    its ratings for a rated one."""
     Psi = model.prior_covariance_
     cov = np.broadcast_to(Psi, (len(pos),) + Psi.shape).copy()
     if rated.any():
@@ -149,10 +155,12 @@ def block_covariances(model, items, attributes=None):
     return cov
 
 
-def intervals(model, items, attributes=None, *, level=0.8, raters=None, clip_numbers=True) -> pd.DataFrame:
+def intervals(model, items, attributes=None, *, level=0.8, raters=None, clip_numbers=True,
+              blocks=None) -> pd.DataFrame:
     """The central ``level`` interval of each item's rating: of the mean user's rating, or, with
     ``raters`` (one array of user ids per item), of the average of those users' ratings of it,
-    widened by the noise of that many ratings.
+    widened by the noise of that many ratings.  ``blocks``: the items' blocks, if the caller
+    has them already (:meth:`~hybrid.estimator.predictions.Scores.blocks_for_items`).
 
     Returns a DataFrame with ``centre``, ``sd``, ``low`` and ``high`` (the ends held to the
     training ratings' range), indexed by item.
@@ -170,9 +178,9 @@ def intervals(model, items, attributes=None, *, level=0.8, raters=None, clip_num
     if not (isinstance(level, float) and 0 < level < 1):
         raise InputError(f"level must be a fraction in (0, 1), found {level!r}")
     items = np.asarray(items, dtype=str)
-    z = model.blocks_for_items(items, attributes, clip_numbers=clip_numbers)
-    _, _, rated = item_rows(model, items, attributes)
-    cov = block_covariances(model, items, attributes)
+    z = model.blocks_for_items(items, attributes, clip_numbers=clip_numbers) if blocks is None else blocks
+    pos, rated, _ = item_positions(model, items, attributes)
+    cov = block_covariances(model, pos, rated)
     spread = model.launch_spread_
     if raters is None:   # the mean user: one g for every item
         base, g = mean_user(model)

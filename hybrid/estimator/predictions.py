@@ -7,6 +7,7 @@ import numpy as np
 import pandas as pd
 
 from hybrid.common.errors import InputError
+from hybrid.estimator.explain import item_positions
 from hybrid.io.tables import validate_attributes
 
 
@@ -25,12 +26,7 @@ class Scores:
         the block the model holds; an item the model does not know needs a row."""
         F = self.check_fitted()
         items = np.asarray(items, dtype=str)
-        pos = pd.Index(self.item_ids_).get_indexer(items)
-        has_row = np.zeros(len(items), bool) if attributes is None else np.isin(items, attributes.index.astype(str))
-        if ((pos < 0) & ~has_row).any():
-            raise InputError(f"item '{items[(pos < 0) & ~has_row][0]}' is not in the model and has no attribute row")
-        rated = (pos >= 0) & (self.item_counts_[np.maximum(pos, 0)] > 0)
-        from_row = has_row & ~rated
+        pos, _, from_row = item_positions(self, items, attributes)
         z = np.empty((len(items), F.item.shape[1]))
         z[~from_row] = F.item[pos[~from_row]]
         if from_row.any():

@@ -41,9 +41,23 @@ class Plan:
         counts = self.items["status"].value_counts()
         out = {s: int(counts.get(s, 0)) for s in STATUS}
         out["ratings planned"] = int(self.items["planned"].sum())
-        out["items reaching target with the plan"] = int(self.items["reaches_target"].sum())
+        # the plan's own effect: items not trusted now that its ratings bring to the target
+        out["more items reaching the target with the plan"] = int(
+            (self.items["reaches_target"] & (self.items["status"] != STATUS[2])).sum())
+        if self.settings.get("aim") == "gain":   # its whole curves drawn: the stability it adds
+            out["stability gained in all"] = round(self.gain(), 4)
         out["asks"] = len(self.asks)
         return out
+
+    def gain(self) -> float:
+        """The stability the planned ratings add, summed over items, read off each item's curve of
+        stability against further ratings (whole curves are drawn with ``aim='gain'`` only;
+        otherwise the curves hold just their two ends, and this is a rough figure)."""
+        grid = np.asarray(self.curves.columns, dtype=float)
+        rows = self.curves.loc[self.items["item"]].to_numpy()
+        planned = self.items["planned"].to_numpy(float)
+        after = np.array([np.interp(p, grid, row) for p, row in zip(planned, rows)])
+        return float((after - rows[:, 0]).sum())
 
 
 def priority_weights(model, column):
