@@ -20,6 +20,7 @@ from typer.testing import CliRunner
 
 from hybrid.cli import app
 from hybrid.datasets.club import DEMO_CONFIG, tasting_club, write_samples
+from hybrid.estimator.batch import SCALAR
 
 # numbers a careless user types, by kind
 NUMBERS = ["0", "-1", "-7", "nan", "inf", "-inf", "1e400", "abc", "", "2.5", "1,000", "0x10", "99999999999999999999"]
@@ -165,7 +166,7 @@ def commands(F: Files, out: Path) -> list[Command]:
                  "--chunk": _int_ok(1), "--engine": _choice_ok(*ENGINES), "--format": _choice_ok(*FORMATS),
                  "--audience-by": _choice_ok("taste", "rating"), "--interval": _float_ok(lambda v: 0 < v < 1),
                  "--keep": _columns_ok(*LOT_COLUMNS),
-                 "--sort": _choice_ok("expected_rating", "expected_high", "item", "liked_share", "name")},
+                 "--sort": _choice_ok(*SCALAR, "name")},     # the one-value columns, and the kept name
                 {1: "model", 2: "new_lots", "--config": "config"}, {"--out": ".csv"}),
         Command("why", lambda: ["why", F["model"], "L0001"],
                 {"--top": _int_ok(0), "--format": _choice_ok(*FORMATS)}, {1: "model", "--new-items": "new_lots"}, {}),

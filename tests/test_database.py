@@ -120,3 +120,16 @@ def test_a_failed_write_leaves_the_old_table(club_db, fitted, club):
     names = sqlalchemy.inspect(engine).get_table_names()
     engine.dispose()
     assert len(kept) == len(club.new_lots) and not [n for n in names if "__hybrid_" in n]
+
+
+def test_a_view_reads_as_a_table(club_db):
+    root, paths, url = club_db
+    engine = sqlalchemy.create_engine(url)
+    with engine.begin() as conn:
+        conn.exec_driver_sql("CREATE VIEW IF NOT EXISTS cheap_lots AS SELECT * FROM new_lots WHERE price < 15")
+    engine.dispose()
+    done = run(app, ["score", str(root / "files.hybrid"), f"{url}#cheap_lots", "--config", CONFIG,
+                     "--out", str(root / "v.csv")])
+    assert done.exit_code == 0, done.output
+    lots = pd.read_csv(paths["new_lots"])
+    assert sorted(pd.read_csv(root / "v.csv")["item"]) == sorted(lots.loc[lots["price"] < 15, "lot"])

@@ -114,12 +114,19 @@ def _summary(model) -> dict:
 _SHOWN = ["item", "content_only", "expected_rating", "expected_low", "expected_high", "liked_share"]
 
 
+def _check_sort(column: str | None, kept: list) -> None:
+    """Refuse, before any work, a --sort column the scores will not have as one value per item."""
+    from hybrid.estimator.batch import SCALAR
+
+    if column is not None and column not in (*SCALAR, *kept):
+        raise InputError(f"--sort: no output column '{column}' to sort by{did_you_mean(column, [*SCALAR, *kept])}"
+                         f"; one of {', '.join([*SCALAR, *kept])}")
+
+
 def _sorted(chunks, column: str):
     """Every chunk's rows, highest ``column`` first (text A to Z): the rows of a whole file, which
     are small beside the item x user blocks that the chunks bound."""
     rows = pd.concat(list(chunks), ignore_index=True)
-    if column not in rows.columns:
-        raise InputError(f"--sort: no output column '{column}'{did_you_mean(column, list(rows.columns))}")
     numeric = pd.api.types.is_numeric_dtype(rows[column])
     yield rows.sort_values(column, ascending=not numeric, kind="stable")
 
@@ -159,6 +166,7 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
     where = with_engine(load_config(config), engine, address)  # where to run is not the model's
     attrs = read_attributes(new_items, cfg, model.features_.spec(), require_all=False)
     kept = name_like(attrs.columns) if keep is None else [c.strip() for c in keep.split(",") if c.strip()]
+    _check_sort(sort, kept)
     seen = {"best": pd.DataFrame(), "edited": 0}
     args = score_arguments(cfg, liked=liked, audience=audience, audience_by=audience_by, neighbours=neighbours,
                            interval=interval, chunk=chunk)
@@ -184,7 +192,7 @@ def score(model_file: Path = typer.Argument(..., metavar="MODEL", help="Model fi
     top = seen["best"]
     if len(top):
         top = top.assign(neighbours=[v[0][0] if v else "" for v in top["neighbours"]]).rename(
-            columns={"neighbours": "first neighbour"})
+            columns={"neighbours": "first_neighbour"})
         emit(top, format, f"{n} items scored into {source_name(out)}; the {len(top)} with the highest expected rating "
                           f"(expected_low to expected_high: the {args['interval']:.0%} interval; estimates)")
 

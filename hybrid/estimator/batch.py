@@ -25,6 +25,9 @@ from hybrid.io.database import is_database, write_database_table
 from hybrid.io.outputs import atomic_path, output_format
 
 _S = defaults("score")   # the defaults, from the one table
+# the columns of one number or word per item (besides the kept ones): what a file can be sorted by
+SCALAR = ("item", "content_only", "attributes_changed", "bias", "expected_rating", "expected_low", "expected_high",
+          "liked_share", "mean_user_rating", "baseline", "moved_by_ratings", "warnings")
 
 
 def score_items(model, attributes: pd.DataFrame, *, liked: float = _S["liked"], audience: int = _S["audience"],

@@ -118,11 +118,12 @@ def _database_error(exc, source: Source) -> InputError:
 
 
 def _check_table(engine, source: Source) -> None:
-    """Refuse a table the database does not have, naming the nearest it has."""
+    """Refuse a table (or view) the database does not have, naming the nearest it has."""
     import sqlalchemy
 
     schema, _, name = source.table.rpartition(".")
-    names = sqlalchemy.inspect(engine).get_table_names(schema=schema or None)
+    seen = sqlalchemy.inspect(engine)
+    names = seen.get_table_names(schema=schema or None) + seen.get_view_names(schema=schema or None)   # views too
     if name not in names:
         raise InputError(f"no table '{source.table}' in the database{did_you_mean(name, names)}"
                          f" (tables: {', '.join(sorted(names)[:8]) or 'none'})", file=_shown(source.url))
