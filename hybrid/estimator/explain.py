@@ -26,6 +26,7 @@ import scipy.sparse as sp
 from scipy.stats import norm
 
 from hybrid.common.errors import InputError
+from hybrid.common.limits import check_score
 from hybrid.core.posterior import covariances, item_grams
 
 
@@ -175,8 +176,7 @@ def intervals(model, items, attributes=None, *, level=0.8, raters=None, clip_num
     >>> bool(((iv["low"] < iv["centre"]) & (iv["centre"] < iv["high"])).all())
     True
     """
-    if not (isinstance(level, float) and 0 < level < 1):
-        raise InputError(f"level must be a fraction in (0, 1), found {level!r}")
+    check_score(interval=level)   # the one rule of an interval's level ([score] interval)
     items = np.asarray(items, dtype=str)
     z = model.blocks_for_items(items, attributes, clip_numbers=clip_numbers) if blocks is None else blocks
     pos, rated, _ = item_positions(model, items, attributes)
