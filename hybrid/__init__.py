@@ -9,7 +9,7 @@ Examples
 >>> hybrid.HybridFactorModel(rank=8).get_params()["rank"]
 8
 """
-__all__ = ["HybridFactorModel", "InputError", "Plan", "load", "plan"]
+__all__ = ["HybridFactorModel", "InputError", "Plan", "expected_kept", "load", "plan"]
 __version__ = "0.1.0"
 
 _PUBLIC = {
@@ -17,6 +17,7 @@ _PUBLIC = {
     "InputError": ("hybrid.common.errors", "InputError"),
     "Plan": ("hybrid.planning.planner", "Plan"),
     "plan": ("hybrid.planning.planner", "plan"),
+    "expected_kept": ("hybrid.planning.kept", "expected_kept"),
     "load": ("hybrid.estimator.model", "HybridFactorModel.load"),
 }
 

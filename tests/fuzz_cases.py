@@ -60,6 +60,13 @@ def build(root: Path) -> Files:
     asks = pd.read_csv(root / "model-asks.csv").head(5)
     pd.DataFrame({"member": asks["user"], "lot": asks["item"], "rating": 4.0}).to_csv(root / "answers.csv", index=False)
     F.f["answers"] = root / "answers.csv"
+    # a campaign with one wave planned (the campaign commands' cases run against it)
+    ledger = root / "club.ledger"
+    for args in (["campaign", "start", str(ledger), str(F["model"]), "--budget", "200"],
+                 ["campaign", "plan", str(ledger), str(F["model"]), "--budget", "30", "--out", str(root / "w1.csv")]):
+        done = run(app, args)
+        assert done.exit_code == 0, done.output
+    F.f["ledger"] = ledger
     # files of the wrong sort
     bad = root / "bad"
     bad.mkdir()
@@ -196,9 +203,37 @@ def commands(F: Files, out: Path) -> list[Command]:
         Command("tune", lambda: ["tune", F["ratings"], F["lots"], "--config", F["config"], "--trials", "1", "--out", o(".toml")],
                 {"--trials": _int_ok(1), "--seed": _int_ok(0), "--format": _choice_ok(*FORMATS)},
                 {1: "ratings", 2: "lots", "--config": "config"}, {"--out": ".toml"}, cheap=False),
+        *campaign_commands(F, o),
         Command("report", lambda: ["report", F["model"], "--plan", F["plan"], "--out", o(".html")],
                 {"--by": _choice_ok(*LOT_COLUMNS)},
                 {1: "model", "--plan": "plan", "--config": "config"}, {"--out": ".html"}),
+    ]
+
+
+def campaign_commands(F: Files, o) -> list[Command]:
+    """The campaign's commands, against a ledger with one wave planned.  Those that change the
+    ledger run only their bad cases (``cheap=False``), so it stays as built."""
+    ledger = lambda: F["ledger"]
+    return [
+        Command("campaign start", lambda: ["campaign", "start", str(F.root / "fresh.ledger"), F["model"]],
+                {"--budget": _int_ok(0), "--per-user": _int_ok(1), "--cooling-off": _int_ok(0),
+                 "--first-response": _float_ok(lambda v: 0 < v <= 1), "--priority": _choice_ok("margin", "price", "altitude_m"),
+                 "--format": _choice_ok(*FORMATS)},
+                {3: "model", "--config": "config"}, {}, cheap=False),
+        Command("campaign plan", lambda: ["campaign", "plan", ledger(), F["model"], "--out", o(".csv"), "--budget", "10"],
+                {"--budget": _int_ok(1), "--format": _choice_ok(*FORMATS)},
+                {2: "ledger", 3: "model"}, {"--out": ".csv", "--asks": ".csv"}, cheap=False),
+        Command("campaign contacts", lambda: ["campaign", "contacts", ledger(), "--out", o(".csv")],
+                {"--wave": _int_ok(1, 1), "--format": _choice_ok(*FORMATS)}, {2: "ledger"}, {"--out": ".csv"}),
+        Command("campaign answers", lambda: ["campaign", "answers", ledger(), F["model"], F["answers"], "--out", o(".hybrid")],
+                {"--wave": _int_ok(1, 1), "--format": _choice_ok(*FORMATS)},
+                {2: "ledger", 3: "model", 4: "answers", "--new-items": "new_lots"}, {"--out": ".hybrid"}, cheap=False),
+        Command("campaign progress", lambda: ["campaign", "progress", ledger()],
+                {"--format": _choice_ok(*FORMATS)}, {2: "ledger"}, {}),
+        Command("campaign opt-out", lambda: ["campaign", "opt-out", ledger(), "--file", F["answers"]],
+                {"--format": _choice_ok(*FORMATS)}, {2: "ledger", "--file": "answers"}, {}, cheap=False),
+        Command("campaign erase", lambda: ["campaign", "erase", ledger(), "M00001", "--model", F["model"], "--out", o(".hybrid")],
+                {"--format": _choice_ok(*FORMATS)}, {2: "ledger", "--model": "model"}, {"--out": ".hybrid"}, cheap=False),
     ]
 
 

@@ -40,6 +40,9 @@ BITS = ("model_fingerprint",)   # a hash of the model's bits: another BLAS, anot
 # (was 'score'), the asks' 'rank' and 'gain' are 'order' and 'information', the plan's 'in_pool'
 # is 'candidate', related lists' 'rank' is 'position'; their values, and the model, unchanged.
 # Then the report speaks the club's nouns (lots, members; [display]) and says what statuses mean.
+# Then (issue 15) not everyone answers: asks go out until the expected answers meet the ratings
+# planned (the asks gain answer_chance, the plan asks, expected_answers, stability_after,
+# expected_kept and the ratings needed for 0.5, 0.6 and 0.7); the model is unchanged.
 EXPECTED = {
     'ratings.csv': 'eea280a750b723c5d90d0cc349b0f27c3b2b1f76c18e0df25b7545daad7cc3da',
     'lots.csv': 'bdfb0cb20b202edcea46229d9edefd90a40dd3bb2e0fb5718a06c33c7bfaf097',
@@ -119,14 +122,22 @@ EXPECTED = {
     'plan.csv plan_target': '640:2.023858e+01:25.298221:20.238577:-0.020750',
     'plan.csv plan_k': '2625ff5cad6bd99dcc1c0edd0389fb3252b15a3cb93bd45886eef4256d5dc538',
     'plan.csv plan_budget': 'b35481b839081be0c65c7538d5bdbdc3733de6f9103a8dc8a9e0426e59015c34',
-    'asks.csv item': 'd079d1e6616bfc9e52c3c8d6ff3bfa314f3e6eae204fe39c7252586cb05fc86f',
-    'asks.csv user': '5dc066345e40b0fe1f5325a683f86ee31720afc3da17651c61a073a0783148f2',
-    'asks.csv order': 'f9402a8529fa2034cf5a72d9d17054952226f69ee8028c83d48774dda4db1a55',
-    'asks.csv information': '488:9.456024e-01:19.307532:0.945602:0.166288',
-    'asks.csv expected_rating': '488:7.362123e+01:21.053520:73.621233:0.319331',
-    'week1.csv member': '1c36d8d5207585554a9176fea4346cf6266f9397773a50a5c363d9da8be77679',
-    'week1.csv lot': '681a3643d466e21c1476412df624344dec8fd57b27a99d5e23f8bd88e1d4023a',
-    'week1.csv rating': '129:3.725252e+01:10.724108:37.252517:0.153224',
+    'plan.csv stability_after': '640:1.391301e+01:22.887070:13.913015:0.679783',
+    'plan.csv expected_kept': '640:2.523754e+01:25.295278:25.237541:-0.048893',
+    'plan.csv needed_0.5': '0e70fc40d9174ec6ae7b8973dd296a56ff48e82abf3cbf3bf4c31887812e647e',
+    'plan.csv needed_0.6': '843b1901ef6d1290be078927ec965ebfedaf992ea8ef10b1fb283d6fe09c146e',
+    'plan.csv needed_0.7': '93ceacead8dc656219eb8b46a16694f51dc7f100ae6405cecac47b41a1cdc3f4',
+    'plan.csv asks': '013d4d302790665beea543178295b261eb73bb5ea9bf13222e383806954f0ee6',
+    'plan.csv expected_answers': '640:1.248966e+02:3.946371:124.896634:1.428627',
+    'asks.csv item': '797cbb9578d2642adb2d9e8b738112eceea830319c06b0e5fcdddbbd9c044f97',
+    'asks.csv user': '0f38c6ef19f3483b527838589b80349efbeaf9686dcacf62ae8dbb892d8074d0',
+    'asks.csv order': '6216a07c06c24f5144dd68fec879daf4b7ba6da648feab8f42d5b707599e8c30',
+    'asks.csv information': '1099:1.237801e+00:28.831267:1.237801:0.135884',
+    'asks.csv expected_rating': '1099:1.115325e+02:31.800310:111.532524:-0.087471',
+    'asks.csv answer_chance': '1099:1.501780e+01:32.820278:15.017798:-0.151089',
+    'week1.csv member': 'ded597cef240462fe482d4a99e592b79e9833b87f38d94ba04c170096501f1db',
+    'week1.csv lot': '0408c1b0ef94c24dbdfec6d7c986469ef2f62308739e491054b019c382e2e5e6',
+    'week1.csv rating': '311:6.031998e+01:16.744037:60.319980:0.084389',
     'report.html': 'ca613c2cc6a048e3f32e14f9afc123752334af5493afdba91990ac47d768a784',
     'model array user_ids': 'e4614767415322ceb427e71e576c18f263cb56e57405f5182e9bd1c85809ec56',
     'model array item_ids': 'c8c6e6a6ce558a68207992665e72539d79f1bd623bdb098b941ea642f2b21b8d',

@@ -80,7 +80,20 @@ def _column_table() -> set[str]:
     """The names in the first cell of each row of the README's table "Every column"."""
     section = README.split("### Every column", 1)[1].split("\n#", 1)[0]
     rows = [line for line in section.splitlines() if line.startswith("| `")]
-    return {name for row in rows for name in re.findall(r"`([a-z_N0-9]+)`", row.split("|")[1])}
+    return {name for row in rows for name in re.findall(r"`([a-z_NL0-9]+)`", row.split("|")[1])}
+
+
+def _campaign_columns(fitted):
+    import copy
+    import tempfile
+    from pathlib import Path
+
+    from hybrid.planning.waves import Campaign
+
+    model = copy.deepcopy(fitted)
+    c = Campaign.start(Path(tempfile.mkdtemp()) / "c.ledger", model, plan_settings={"draws": 16})
+    _, p = c.plan_wave(model, budget=20)
+    return set(c.contact_sheet().columns) | set(c.progress().columns)
 
 
 def test_every_column_any_command_writes_is_in_the_column_table(fitted, club):
@@ -99,8 +112,9 @@ def test_every_column_any_command_writes_is_in_the_column_table(fitted, club):
                | set(fitted.related(["L0001"], k=2).columns) | {"part", "effect"}
                | set(evaluate(club.ratings, club.lots, params, folds=2).columns)
                | set(calibrate(club.ratings, club.lots, params, ns=(0, 5), min_ratings=20, n_probe=8, draws=8).columns)
-               | set(tune(club.ratings, club.lots, params, trials=1)[0].columns))
+               | set(tune(club.ratings, club.lots, params, trials=1)[0].columns)
+               | _campaign_columns(fitted))
     table = _column_table()
-    named = {re.sub(r"_\d+(?=_|$)", "_N", c) for c in written}
+    named = {re.sub(r"^needed_[0-9.]+$", "needed_L", re.sub(r"_\d+(?=_|$)", "_N", c)) for c in written}
     missing = sorted(c for c in named if c not in table and re.sub(r"_(mean|sd)$", "", c) not in table)
     assert not missing, missing

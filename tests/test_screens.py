@@ -210,7 +210,7 @@ def test_screens_files_and_help_use_the_glossary_words(demo):
         assert not found, (pattern, instead, found[:2])
     # the files' columns: ask order and information, related position, the demo's rating column
     asks = pd.read_csv(demo / "ga.csv")
-    assert list(asks.columns) == ["item", "user", "order", "information", "expected_rating"]
+    assert list(asks.columns) == ["item", "user", "order", "information", "expected_rating", "answer_chance"]
     related = json.loads(CliRunner().invoke(app, ["related", f"{d}/club.hybrid", "L0042", "--format", "json"]).stdout)
     assert list(related[0]) == ["item", "position", "neighbour", "distance"]
     assert pd.read_csv(demo / "ratings.csv", nrows=1).columns.tolist() == ["member", "lot", "rating"]

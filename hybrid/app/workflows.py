@@ -42,7 +42,7 @@ def plan_arguments(cfg: dict, **flags) -> dict:
             "max_needed": p["max_needed"], "aim": p["aim"], "responders": p["responders"],
             # 'likely' responders are those expected to give the liked score or more
             "responder_threshold": p["responder_threshold"] or cfg["score"]["liked"],
-            "candidate_min_ratings": p["candidate_min_ratings"]}
+            "candidate_min_ratings": p["candidate_min_ratings"], "levels": p["levels"]}
     args.update({name: value for name, value in flags.items() if value is not None})
     return args
 

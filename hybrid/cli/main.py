@@ -315,7 +315,10 @@ app.command("update", cls=Command)(guarded(update_command))
 app.command("calibrate", cls=Command)(guarded(calibrate_command))
 app.command("report", cls=Command)(guarded(report_command))
 
+from hybrid.cli.campaign import campaign_app  # noqa: E402
 from hybrid.cli.evaluate import evaluate_command, tune_command  # noqa: E402
+
+app.add_typer(campaign_app, name="campaign")
 
 app.command("evaluate", cls=Command)(guarded(evaluate_command))
 app.command("tune", cls=Command)(guarded(tune_command))

@@ -82,18 +82,40 @@ def plan_command(
     emit_mapping(summary, format, f"plan written to {out}")
     if format == "table":
         items = result.items
-        bought = items[items["planned"] > 0]
-        if len(bought):   # what the budget buys: the items it gives ratings to, most first
-            top = bought.sort_values(["planned", "stability"], ascending=[False, True]).head(10)
-            title = f"the items the budget buys ({len(bought)}; the first 10 by ratings planned)"
+        if (items["planned"] > 0).any():
+            show_bought(items)
         else:
             top = items[items["status"] != "trusted"].sort_values(
                 ["needed", "stability"], ascending=[False, True], na_position="first").head(10)
-            title = "the items that need the most (no budget given: --budget N plans)"
-        emit(top[["item", "status", "ratings", "stability", "needed_label", "planned", "reaches_target"]].rename(
-            columns={"needed_label": "ratings needed", "reaches_target": "reaches the target"}), "table", title)
+            levels = _level_columns(items)
+            shown = top[["item", "ratings", "stability"] + levels + ["needed_label"]].rename(
+                columns={"needed_label": "to the target", **{c: "to " + c[len("needed_"):] for c in levels}})
+            emit(shown, "table", "the items that need the most, and the ratings each needs to reach each level "
+                                 "(no budget given: --budget N plans)")
         say(STATUS_WORDS)
         say(CAUTION)
+
+
+def _level_columns(items):
+    return [c for c in items.columns if c.startswith("needed_") and c != "needed_label"]
+
+
+def show_bought(items):
+    """What a budget buys, on screen: each item it gives ratings to (most first), the asks and the
+    answers expected, its stability after them and the share of its list expected to stand."""
+    bought = items[items["planned"] > 0]
+    if not len(bought):
+        say("The budget buys no item's ratings (nothing below the target reaches it within the budget).")
+        return
+    top = bought.sort_values(["planned", "stability"], ascending=[False, True]).head(10)
+    shown = top[["item", "planned", "asks", "expected_answers", "stability_after", "expected_kept"]].round(
+        {"expected_answers": 1, "stability_after": 3, "expected_kept": 3})
+    emit(shown.rename(columns={"expected_answers": "answers expected", "stability_after": "stability after",
+                               "expected_kept": "list kept"}),
+        "table", f"the items the budget buys ({len(bought)}; the first 10 by ratings planned)")
+    say("Planned: ratings the budget gives it; asks: people to ask for them (not everyone answers). List kept: "
+        "the share of each item's neighbour list expected to stand once its answers are folded in with update "
+        "(the number the campaign can check afterwards).")
 
 
 def update_command(

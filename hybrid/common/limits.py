@@ -64,6 +64,12 @@ def _scale():
             "[low, high] with low < high")
 
 
+def _levels():
+    ok = _real(lambda v: 0 < v <= 1, "")[0]
+    return (lambda v: isinstance(v, (list, tuple)) and len(v) <= 10 and all(map(ok, v)),
+            "a list of at most 10 fractions in (0, 1]")
+
+
 @dataclass(frozen=True)
 class Setting:
     """One setting: its default, its rule (a test and the words for what it allows), its help.
@@ -169,6 +175,15 @@ SETTINGS = {
         "budget": S(None, _whole(0), "ratings to collect in all", in_file=False),
         "per_user": S(None, _whole(1), "most asks per user", in_file=False),
         "per_item": S(None, _whole(1), "most ratings planned per item", in_file=False),
+        "levels": S([0.5, 0.6, 0.7], _levels(), "stability levels whose ratings needed the plan file gives besides the\n"
+                    "target's (an item is never just \"more than max_needed\")"),
+    },
+    "campaign": {
+        "first_response": S(0.3, _real(lambda v: 0 < v <= 1, "a fraction in (0, 1]"),
+                            "share of asks expected to be answered before a campaign's first answers are in"),
+        "per_user": S(3, _whole(1), "most asks per user over the whole campaign (all waves)"),
+        "cooling_off": S(2, _whole(0), "waves during which a user asked for an item who did not answer\n"
+                         "is not asked for it again"),
     },
     "display": {
         "item": S("item", ((lambda v: isinstance(v, str) and v.strip() != ""), "a word"),
@@ -214,6 +229,7 @@ def upgrade_settings(cfg: dict | None, notice=None) -> dict | None:
 # the rules by themselves, for the checks below
 PLAN = {name: s.rule for name, s in SETTINGS["plan"].items()}
 SCORE = {name: s.rule for name, s in SETTINGS["score"].items()}
+CAMPAIGN = {name: s.rule for name, s in SETTINGS["campaign"].items()}
 # the estimator's settings: the model's, the text encoding's and the tag separator
 ESTIMATOR = {**SETTINGS["model"], **SETTINGS["features"], "tag_separator": SETTINGS["attributes"]["tag_separator"]}
 
@@ -282,6 +298,11 @@ def check_checks(**values) -> None:
     """The same for :func:`hybrid.evaluation.evaluate.evaluate`, :func:`hybrid.planning.calibration.calibrate` and
     :func:`hybrid.evaluation.tune.tune`."""
     _check(CHECKS, values)
+
+
+def check_campaign(**values) -> None:
+    """The same for a campaign's settings (``[campaign]``)."""
+    _check(CAMPAIGN, values)
 
 
 def check_score(**values) -> None:

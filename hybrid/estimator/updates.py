@@ -56,6 +56,57 @@ def fold_in(model, ratings: pd.DataFrame, attributes: pd.DataFrame | None = None
     return model.set_fitted(factors_=F)   # the blocks changed in place: derived state follows
 
 
+def fold_out(model, users):
+    """Remove users from a fitted model: their ratings, their vectors and their ids.
+
+    What a person's right to erasure asks of a model: nothing of theirs is left in it.  The
+    items they rated are re-solved without their ratings (as :func:`fold_in` re-solves what it
+    touches); every other block, the map and the prior stay as they were, so the result is a
+    refit-free fold-out (a refit would also forget what their ratings taught the map and the
+    penalties).
+
+    Returns
+    -------
+    model
+
+    Examples
+    --------
+    >>> from hybrid import HybridFactorModel
+    >>> from hybrid.datasets.club import tasting_club
+    >>> club = tasting_club(n_members=200, n_lots=40, n_new=0, seed=3)
+    >>> m = HybridFactorModel(rank=2, epochs=2, lam_user=5.0, lam_item=5.0, lam_map=5.0,
+    ...                       schema=club.schema).fit(club.ratings, club.lots)
+    >>> n = len(m.ratings_[2]); mine = int((club.ratings["user"] == m.user_ids_[0]).sum())
+    >>> gone = m.user_ids_[0]
+    >>> m = fold_out(m, [gone])
+    >>> gone in m.user_ids_, len(m.ratings_[2]) == n - mine
+    (False, True)
+    """
+    F = model.check_fitted()
+    names = np.atleast_1d(np.asarray(users, dtype=str))
+    pos = pd.Index(model.user_ids_).get_indexer(names)
+    if (pos < 0).any():
+        first = names[np.argmax(pos < 0)]
+        raise InputError(f"user '{first}' is not in the model")
+    u, i, r = model.ratings_
+    gone = np.isin(u, pos)
+    touched = np.unique(i[gone])
+    stay = np.ones(len(model.user_ids_), bool)
+    stay[pos] = False
+    remap = np.cumsum(stay) - 1
+    F.user = F.user[stay]
+    model.set_fitted(factors_=F, user_ids_=model.user_ids_[stay],
+                     ratings_=(remap[u[~gone]].astype(np.int32), i[~gone], r[~gone]))
+    if touched.size:
+        data = model.rating_data()
+        if model.map_weighting != "none":
+            weight = model.prior_weight_.copy()
+            weight[touched] = model.weight_for_counts(data.item_counts())[touched]
+            model.set_fitted(prior_weight_=weight)
+        item_step(data, F, model.attributes_, model.prior_weight_, rows=touched, shift=model.prior_shift(touched))
+    return model.set_fitted(factors_=F)
+
+
 def import_counts(model, ratings: pd.DataFrame) -> dict:
     """How many of ``ratings`` (columns user, item, rating) are new to the model, change a
     rating it holds, or repeat one it holds with the same value.

@@ -100,3 +100,53 @@ def calibrate(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, *, 
                      "gap": float(abs(predicted.mean() - actual.mean()))})
     step(len(ns) + 1, len(ns) + 1, "done")
     return pd.DataFrame(rows)
+
+
+LOOP_NS = (2, 5, 10, 20, 40)
+
+
+def calibrate_updates(ratings: pd.DataFrame, attributes: pd.DataFrame, params: dict, *, ns=LOOP_NS,
+                      min_ratings: int = 60, n_probe: int = 120, k: int = 10, draws: int = 64, seed: int = 0,
+                      on_step=None) -> pd.DataFrame:
+    """The planner's :func:`~hybrid.planning.kept.expected_kept` against what ``update`` does.
+
+    The loop a user runs, for each ``n``: fit with each probe item's first ``n`` ratings
+    inside the training data (the rest of its ratings held back), take the planner's
+    prediction of the share of each probe's top-``k`` list that stands after its remaining
+    ratings, fold those ratings in with ``fold_in`` (what ``hybrid update`` runs), and compare
+    the lists before and after on the planner's own candidate pool.  One row per ``n``:
+    ``n``, ``items``, ``more`` (median ratings folded in), ``predicted``, ``seen``, ``seen_se``
+    and ``gap``.
+    """
+    from hybrid.planning.kept import current_lists, expected_kept
+
+    step = on_step or (lambda *a: None)
+    check_checks(n_probe=n_probe, seed=seed, min_ratings=min_ratings)
+    rng = np.random.default_rng(seed)
+    counts = ratings["item"].value_counts()
+    eligible = np.sort(counts.index[counts >= max(min_ratings, 2 * max(ns))].to_numpy(str))
+    probes = np.sort(rng.choice(eligible, min(n_probe, len(eligible)), replace=False))
+    inside = ratings["item"].isin(probes).to_numpy()
+    order = np.full(len(ratings), -1.0)
+    draw = pd.Series(rng.random(int(inside.sum())))
+    order[inside] = draw.groupby(ratings["item"].to_numpy()[inside]).rank(method="first").to_numpy() - 1
+    rows = []
+    for j, n in enumerate(ns):
+        step(j, len(ns), f"probes with {n} ratings")
+        early = ~inside | (order < n)
+        model = HybridFactorModel(**params).fit(ratings[early], attributes)
+        later = ratings[~early]
+        where = pd.Index(model.item_ids_).get_indexer(probes)
+        more = np.bincount(pd.Index(probes).get_indexer(later["item"]), minlength=len(probes))
+        predicted = expected_kept(model, probes, more, k, draws=draws, seed=seed)
+        assessor = Assessor(model, k=k, draws=2, seed=seed)
+        before = current_lists(model, where, assessor.pool, k)
+        after = current_lists(model.fold_in(later.copy()), where, assessor.pool, k)
+        seen = overlap_of_lists(before, after)
+        rows.append({"n": n, "items": len(probes), "more": int(np.median(more)),
+                     "predicted": float(predicted.mean()), "seen": float(seen.mean()),
+                     "seen_se": float(seen.std(ddof=1) / np.sqrt(len(seen))),
+                     "gap": float(abs(predicted.mean() - seen.mean()))})
+    step(len(ns), len(ns), "done")
+    return pd.DataFrame(rows)
+

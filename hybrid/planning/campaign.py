@@ -14,9 +14,10 @@ more ratings, known at the planner's grid of ``n``.  Two aims:
 Whom to ask.  For each item, users who have not rated it are ranked by the
 information gain of one more rating, ``0.5 log(1 + b^T Sigma b / sigma^2)``
 (D-optimal design; Fedorov, Theory of Optimal Experiments, 1972), times a
-response propensity from their rating activity; after each pick ``Sigma``
-is updated by the Sherman-Morrison formula, so the next pick values what the
-first did not already tell.
+user's chance of answering (:mod:`hybrid.planning.responses`); users are picked
+until the expected answers reach the ratings planned, so a wave asks more people than
+it plans ratings.  After each pick ``Sigma`` is updated by the Sherman-Morrison
+formula, so the next pick values what the first did not already tell.
 """
 from __future__ import annotations
 
@@ -107,15 +108,9 @@ def exact_allocation(curves, grid, weights, budget, aim="gain", needed=None):
     return grid[choice].astype(np.int64), float(-res.fun)
 
 
-def propensity(activity):
-    """Response propensity in (0, 1) from each user's number of ratings (n / (n + median))."""
-    activity = np.asarray(activity, float)
-    med = max(float(np.median(activity)), 1.0)
-    return activity / (activity + med)
-
-
-def choose_askees(B, cov, sigma2, n_asks, eligible, weight, asks_left):
-    """Pick ``n_asks`` users for one item by propensity-weighted information gain.
+def choose_askees(B, cov, sigma2, wanted, eligible, weight, asks_left):
+    """Pick users for one item by propensity-weighted information gain, until the expected
+    answers (the sum of the picks' propensities) reach ``wanted`` ratings.
 
     Parameters
     ----------
@@ -125,8 +120,10 @@ def choose_askees(B, cov, sigma2, n_asks, eligible, weight, asks_left):
         The item's posterior covariance; updated by Sherman-Morrison after each pick.
     eligible : bool ndarray (U,)
         Users who may be asked for this item (have not rated it).
+    wanted : float
+        Ratings wanted for the item (expected answers, not asks).
     weight : ndarray (U,)
-        Response propensity.
+        Each user's chance of answering (:mod:`hybrid.planning.responses`).
     asks_left : int ndarray (U,)
         Remaining asks per user across the campaign; decremented in place.
 
@@ -134,7 +131,8 @@ def choose_askees(B, cov, sigma2, n_asks, eligible, weight, asks_left):
     -------
     users : list of int
     gains : list of float (the information gain of each pick)
-    cov : ndarray (d, d), the covariance after all picks
+    cov : ndarray (d, d), the covariance expected after all picks (each adds its rating's
+        precision times its chance of coming)
 
     Examples
     --------
@@ -143,12 +141,16 @@ def choose_askees(B, cov, sigma2, n_asks, eligible, weight, asks_left):
     >>> users, _, _ = choose_askees(B, np.eye(2), 1.0, 2, np.ones(3, bool), np.ones(3), left)
     >>> users, left.tolist()        # the two far-apart users: the second adds the most after the first
     ([0, 2], [0, 1, 0])
+    >>> half = np.full(3, 0.5)      # each answers half the time: one rating takes two asks
+    >>> choose_askees(B, np.eye(2), 1.0, 1, np.ones(3, bool), half, np.ones(3, int))[0]
+    [0, 2]
     """
     cov = cov.copy()
     quad = np.einsum("ud,de,ue->u", B, cov, B)
     picks, gains = [], []
-    for _ in range(n_asks):
-        score = np.where(eligible & (asks_left > 0), 0.5 * np.log1p(quad / sigma2) * weight, -np.inf)
+    expected = 0.0
+    while expected < wanted - 1e-9:
+        score = np.where(eligible & (asks_left > 0) & (weight > 0), 0.5 * np.log1p(quad / sigma2) * weight, -np.inf)
         u = int(np.argmax(score))
         if not np.isfinite(score[u]):
             break
@@ -156,12 +158,17 @@ def choose_askees(B, cov, sigma2, n_asks, eligible, weight, asks_left):
         gains.append(float(0.5 * np.log1p(quad[u] / sigma2)))
         asks_left[u] -= 1
         eligible[u] = False
+        expected += float(weight[u])
+        # Sherman-Morrison on the precision update, the rating counted by its chance of coming
         s = cov @ B[u]
-        denom = sigma2 + float(B[u] @ s)
-        cov -= np.outer(s, s) / denom          # Sherman-Morrison on the precision update
-        quad -= (B @ s) ** 2 / denom
+        denom = sigma2 + float(weight[u]) * float(B[u] @ s)
+        cov -= float(weight[u]) * np.outer(s, s) / denom
+        quad -= float(weight[u]) * (B @ s) ** 2 / denom
     return picks, gains, cov
 
 
+ASK_COLUMNS = ["item", "user", "order", "information", "expected_rating", "answer_chance"]
+
+
 def asks_table(rows) -> pd.DataFrame:
-    return pd.DataFrame(rows, columns=["item", "user", "order", "information", "expected_rating"])
+    return pd.DataFrame(rows, columns=ASK_COLUMNS)

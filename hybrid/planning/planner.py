@@ -18,14 +18,22 @@ import pandas as pd
 
 from hybrid.common.errors import InputError, did_you_mean_id
 from hybrid.common.limits import SETTINGS, check_plan, defaults
-from hybrid.planning.assess import STATUS, Assessment, Assessor, ClusterAssessor, assess, user_design
+from hybrid.planning.assess import (
+    STATUS,
+    Assessment,
+    Assessor,
+    ClusterAssessor,
+    assess,
+    ratings_needed,
+    user_design,
+)
 from hybrid.planning.campaign import (
     allocate_gain,
     allocate_reach,
     asks_table,
     choose_askees,
-    propensity,
 )
+from hybrid.planning.responses import Contacts
 
 
 @dataclass
@@ -47,6 +55,8 @@ class Plan:
         if self.settings.get("aim") == "gain":   # its whole curves drawn: the stability it adds
             out["stability gained in all"] = round(self.gain(), 4)
         out["asks"] = len(self.asks)
+        # a wave asks more people than it plans ratings: not everyone answers
+        out["expected answers"] = round(float(self.asks["answer_chance"].sum()), 1)
         return out
 
     def gain(self) -> float:
@@ -88,7 +98,7 @@ _P = defaults("plan")   # plan()'s defaults, from the one table
 def plan(model, target=_P["target"], k=_P["k"], budget=None, per_user=None, priority=None, seed=_P["seed"], *,
          draws=_P["draws"], max_needed=_P["max_needed"], aim=_P["aim"], per_item=None, responders=_P["responders"],
          responder_threshold=None, candidate_min_ratings=_P["candidate_min_ratings"], items=None, client=None,
-         pool_min_ratings=None) -> Plan:
+         contacts: Contacts | None = None, levels=_P["levels"], pool_min_ratings=None) -> Plan:
     """Assess every item and, given a budget, plan a sampling campaign.
 
     Parameters
@@ -128,6 +138,15 @@ def plan(model, target=_P["target"], k=_P["k"], budget=None, per_user=None, prio
         candidates are still all the catalogue's trusted items.
     client : distributed.Client, optional
         Evaluate the items' stability on this Dask cluster (same results).
+    levels : list of float
+        Stability levels (below the target) whose ratings needed the table gives too
+        (``needed_0.5``, ...), so that an item far from the target still has a number to act on.
+    contacts : Contacts, optional
+        Whom this wave may ask and each user's chance of answering (a campaign's record,
+        :func:`hybrid.planning.responses.contacts_from_history`); by default everyone may be
+        asked up to ``per_user`` times and answers as often as a campaign's first wave is
+        assumed to (``[campaign] first_response``, scaled by rating activity).  Asks are sized
+        so that the expected answers meet the ratings planned.
 
     Returns
     -------
@@ -149,7 +168,8 @@ def plan(model, target=_P["target"], k=_P["k"], budget=None, per_user=None, prio
         candidate_min_ratings = pool_min_ratings
     check_plan(target=target, k=k, budget=budget, per_user=per_user, per_item=per_item, seed=seed,
                draws=draws, max_needed=max_needed, aim=aim, responders=responders,
-               responder_threshold=responder_threshold, candidate_min_ratings=candidate_min_ratings)
+               responder_threshold=responder_threshold, candidate_min_ratings=candidate_min_ratings,
+               levels=None if levels is None else list(levels))
     # 'likely' responders: those expected to rate at least the threshold (default LIKED)
     threshold = (LIKED if responder_threshold is None else responder_threshold) if responders == "likely" else None
     A = Assessor(model, k, draws, seed, candidate_min_ratings, responders, threshold)
@@ -158,11 +178,45 @@ def plan(model, target=_P["target"], k=_P["k"], budget=None, per_user=None, prio
     found = assess(A, _chosen(model, items), target, max_needed, curves=(aim == "gain"))
     weights = priority_weights(model, priority)[found.chosen]
     planned = allocate(found, weights, budget, aim, per_item) if budget else np.zeros(len(found.chosen), np.int64)
-    asks = _asks(model, A, found.chosen, planned, weights, per_user) if budget else asks_table([])
+    if contacts is None:
+        contacts = Contacts.fresh(model, per_user)
+    asks = _asks(model, A, found.chosen, planned, weights, contacts) if budget else asks_table([])
     settings = {"target": target, "k": k, "budget": budget, "per_user": per_user, "priority": priority,
                 "seed": seed, "draws": draws, "aim": aim, "pool_size": int(len(A.pool)), "pool_rule": A.pool_rule,
                 "responders": responders}
-    return Plan(plan_table(model, A, found, planned, weights, budget), asks, found.curve_frame(model), settings)
+    table = with_outlook(plan_table(model, A, found, planned, weights, budget), A, found, planned)
+    table = with_levels(table, A, found, [v for v in (levels or ()) if v < target], max_needed)
+    return Plan(with_asks(table, asks), asks, found.curve_frame(model), settings)
+
+
+def with_outlook(items: pd.DataFrame, A: Assessor, found: Assessment, planned) -> pd.DataFrame:
+    """Each item's stability after its planned ratings, and the share of its list expected to
+    stand once they are folded in with ``update`` (:func:`hybrid.planning.kept.expected_kept`;
+    1 where nothing is planned)."""
+    after, kept = found.now.copy(), np.ones(len(planned))
+    bought = np.flatnonzero(planned > 0)
+    if bought.size:
+        after[bought] = A.at(found.chosen[bought], planned[bought])[0]
+        kept[bought] = A.kept(found.chosen[bought], planned[bought])[0]
+    return items.assign(stability_after=after, expected_kept=kept)
+
+
+def with_levels(items: pd.DataFrame, A: Assessor, found: Assessment, levels, max_needed) -> pd.DataFrame:
+    """Ratings needed to reach each of ``levels`` (columns ``needed_<level>``; empty beyond
+    ``max_needed``), found as the target's are."""
+    out = {}
+    for level in sorted(levels):
+        needed = ratings_needed(A, found.chosen, found.now, level, max_needed, curves=False)[1]
+        out[f"needed_{level:g}"] = pd.array(np.where(np.isfinite(needed), needed, np.nan)).astype("Int64")
+    return items.assign(**out)
+
+
+def with_asks(items: pd.DataFrame, asks: pd.DataFrame) -> pd.DataFrame:
+    """The plan's table with each item's asks and expected answers (their chances summed)."""
+    per = asks.groupby("item").agg(asks=("user", "size"), expected_answers=("answer_chance", "sum"))
+    out = items.join(per, on="item")
+    return out.assign(asks=out["asks"].fillna(0).astype(np.int64),
+                      expected_answers=out["expected_answers"].fillna(0.0))
 
 
 def allocate(found: Assessment, weights, budget, aim, per_item=None) -> np.ndarray:
@@ -206,11 +260,11 @@ def _chosen(model, items):
     return where
 
 
-def _asks(model, A: Assessor, chosen, planned, weights, per_user):
+def _asks(model, A: Assessor, chosen, planned, weights, contacts: Contacts):
     """Whom to ask for every planned item, most important items first."""
     B = user_design(model)
-    weight = propensity(model.user_counts_)
-    left = np.full(len(B), np.iinfo(np.int64).max if per_user is None else int(per_user))
+    weight = np.where(contacts.opted_out, 0.0, contacts.propensity)
+    left = contacts.asks_left.copy()
     R = model.rating_data().by_item
     rows = []
     order = np.flatnonzero(planned > 0)
@@ -219,10 +273,12 @@ def _asks(model, A: Assessor, chosen, planned, weights, per_user):
         i = chosen[j]
         eligible = np.ones(len(B), bool)
         eligible[R.indices[R.indptr[i]:R.indptr[i + 1]]] = False
+        eligible[contacts.opted_out] = False
+        eligible[contacts.blocked.get(int(i), [])] = False
         users, gains, _ = choose_askees(B, A.cov_now[i], model.sigma2_new_, int(planned[j]), eligible, weight, left)
         if users:
             expected = model.clip(model.combine(model.user_blocks_[users],
                                                  np.repeat(model.item_blocks_[[i]], len(users), 0)))
-            rows += [(model.item_ids_[i], model.user_ids_[u], r + 1, g, e)
+            rows += [(model.item_ids_[i], model.user_ids_[u], r + 1, g, e, weight[u])
                      for r, (u, g, e) in enumerate(zip(users, gains, expected))]
     return asks_table(rows)
