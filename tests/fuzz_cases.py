@@ -194,7 +194,8 @@ def commands(F: Files, out: Path) -> list[Command]:
                 {"--format": _choice_ok(*FORMATS)}, {1: "model", 2: "answers", "--new-items": "new_lots", "--config": "config"},
                 {"--out": ".hybrid"}),
         Command("calibrate", lambda: ["calibrate", F["ratings"], F["lots"], "--config", F["config"], "--probes", "5"],
-                {"--probes": _int_ok(1), "--seed": _int_ok(0), "--format": _choice_ok(*FORMATS)},
+                {"--probes": _int_ok(1), "--seed": _int_ok(0), "--format": _choice_ok(*FORMATS),
+                 "--protocol": _choice_ok("hidden", "update")},
                 {1: "ratings", 2: "lots", "--config": "config"}, {}, cheap=False),
         Command("evaluate", lambda: ["evaluate", F["ratings"], F["lots"], "--config", F["config"], "--folds", "2"],
                 {"--protocol": _choice_ok("cold", "warm", "few"), "--folds": _int_ok(2, 100), "--seed": _int_ok(0),
@@ -206,7 +207,7 @@ def commands(F: Files, out: Path) -> list[Command]:
         *campaign_commands(F, o),
         Command("report", lambda: ["report", F["model"], "--plan", F["plan"], "--out", o(".html")],
                 {"--by": _choice_ok(*LOT_COLUMNS)},
-                {1: "model", "--plan": "plan", "--config": "config"}, {"--out": ".html"}),
+                {1: "model", "--plan": "plan", "--config": "config", "--campaign": "ledger"}, {"--out": ".html"}),
     ]
 
 

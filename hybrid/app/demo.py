@@ -60,10 +60,12 @@ def run_demo(folder, seed: int = 7, say=print) -> dict:
             f"expected {row.expected_rating:.2f} (80% interval {row.expected_low:.2f} to {row.expected_high:.2f}; "
             f"most from {reason}), {row.liked_share:.0%} of members likely to give "
             f"{cfg['score']['liked']:g}+; neighbours {near}")
-    _campaign(model, new, cfg, folder, paths, say)
+    p = _campaign(model, new, cfg, folder, paths, say)
+    _, progress = _waves(model.__class__.load(paths["model"]), cfg, folder, paths, say)
+    _report(model, p, cfg, folder, paths, progress)
     say(f"Files are in {folder}/ (ratings, lots, new lots and the same in club.db, settings, model, scores, plan, asks, "
-        f"week1 answers to try `hybrid update`, report.html). "
-        f"Done in {time.perf_counter() - t0:.1f} s.")
+        f"week1 answers to try `hybrid update`, the campaign's ledger, its waves' plans, contact sheets, answers and "
+        f"models, report.html). Done in {time.perf_counter() - t0:.1f} s.")
     return paths
 
 
@@ -88,14 +90,6 @@ def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):
     write_table(p.asks, paths["asks"])
     paths["week1"] = folder / "week1.csv"
     write_table(_first_answers(p.asks, model), paths["week1"])
-    from hybrid.app.report import build_report
-    from hybrid.io.outputs import atomic_path
-    paths["report"] = folder / "report.html"
-    with atomic_path(paths["report"]) as tmp:
-        tmp.write_text(build_report(model, p.items, k=cfg["plan"]["k"], target=cfg["plan"]["target"],
-                                    liked=cfg["score"]["liked"], interval=cfg["score"]["interval"],
-                                    nouns=nouns_of(cfg)),
-                       encoding="utf-8")
     s = p.summary()
     items = p.items
     say(f"Planner (top-{cfg['plan']['k']} neighbour lists, target stability {cfg['plan']['target']:g}): "
@@ -106,5 +100,74 @@ def _campaign(model, new, cfg, folder, paths, say, budget=500, per_user=3):
             f"ratings (median {int(reach['needed'].median())}); the rest need more than that.")
     say(f"  A {budget}-rating campaign weighted by margin, at most {per_user} asks per member, would bring "
         f"{s['more items reaching the target with the plan']} more lots to the target "
-        f"({s['asks']} asks to {p.asks['user'].nunique()} members).")
+        f"({s['asks']} asks to {p.asks['user'].nunique()} members, {s['expected answers']:g} answers expected: "
+        "not everyone answers).")
     say(f"  {CAUTION}")
+    return p
+
+
+def _report(model, p, cfg, folder, paths, progress):
+    from hybrid.app.report import build_report
+    from hybrid.io.outputs import atomic_path
+    paths["report"] = folder / "report.html"
+    with atomic_path(paths["report"]) as tmp:
+        tmp.write_text(build_report(model, p.items, k=cfg["plan"]["k"], target=cfg["plan"]["target"],
+                                    liked=cfg["score"]["liked"], interval=cfg["score"]["interval"],
+                                    nouns=nouns_of(cfg), progress=progress),
+                       encoding="utf-8")
+
+
+def _invented_answers(asks, chance, seed):
+    """Invented answers to a wave's asks: each member answers with their own invented chance, a
+    rating near their expected one (half steps, 1 to 5)."""
+    rng = np.random.default_rng(seed)
+    picked = asks[rng.random(len(asks)) < chance.reindex(asks["user"]).to_numpy()]
+    score = np.clip(np.round((picked["expected_rating"].to_numpy() + rng.normal(0, 0.6, len(picked))) * 2) / 2, 1, 5)
+    return pd.DataFrame({"member": picked["user"].to_numpy(), "lot": picked["item"].to_numpy(), "rating": score})
+
+
+def _waves(model, cfg, folder, paths, say, budget=600, per_wave=250, seed=11):
+    """A campaign in two waves, recorded in club.ledger: plan, contact, invented answers (most
+    members do not answer), fold them in, one member opts out between the waves."""
+    from hybrid.app.workflows import plan_arguments
+    from hybrid.io.outputs import write_table
+    from hybrid.io.tables import read_ratings
+    from hybrid.planning.waves import Campaign
+
+    ledger = folder / "club.ledger"
+    for stale in (ledger, folder / "club.ledger-wal", folder / "club.ledger-shm"):
+        stale.unlink(missing_ok=True)     # a demo run starts its campaign afresh
+    camp = Campaign.start(ledger, model, budget=budget, per_user=3, cooling_off=2,
+                          plan_settings={**plan_arguments(cfg), "priority": "margin"}, about=cfg)
+    rng = np.random.default_rng(seed)
+    # each member's invented chance of answering: most answer rarely, keen raters more often
+    chance = pd.Series(np.clip(rng.beta(1.5, 3.5, len(model.user_ids_)) * (0.6 + model.user_counts_ /
+                                                                            model.user_counts_.mean() * 0.4), 0, 1),
+                       index=model.user_ids_)
+    paths["ledger"] = ledger
+    for wave in (1, 2):
+        number, p = camp.plan_wave(model, budget=per_wave)
+        paths[f"wave{wave}_plan"], paths[f"wave{wave}_contacts"] = folder / f"wave{wave}-plan.csv", folder / f"wave{wave}-contacts.csv"
+        write_table(p.items, paths[f"wave{wave}_plan"])
+        write_table(camp.contact_sheet(number), paths[f"wave{wave}_contacts"])
+        answers = _invented_answers(p.asks, chance, seed + wave)
+        paths[f"wave{wave}_answers"] = folder / f"wave{wave}-answers.csv"
+        write_table(answers, paths[f"wave{wave}_answers"])
+        if wave == 1:
+            quitter = str(p.asks["user"].iloc[0])
+            camp.opt_out([quitter], source="email")
+        model, _ = camp.import_answers(model, read_ratings(paths[f"wave{wave}_answers"], cfg),
+                                       f"wave{wave}-answers.csv")
+        paths[f"wave{wave}_model"] = folder / f"club-wave{wave}.hybrid"
+        model.save(paths[f"wave{wave}_model"])
+    progress = camp.progress()
+    say(f"A campaign in two waves (club.ledger; the answers are invented, and most members do not answer), "
+        f"budget {budget} ratings, {per_wave} a wave, at most 3 asks per member over the campaign:")
+    for row in progress.itertuples():
+        say(f"  Wave {row.wave}: {row.asked} asks, {int(round(row.expected_answers))} answers expected; "
+            f"{row.answered} came ({row.response_rate:.0%}); {row.items_newly_trusted} of {row.items_planned} lots "
+            f"newly trusted; share of their lists predicted to stand {row.kept_predicted:.2f}, seen {row.kept_seen:.2f}.")
+    say(f"  Member {quitter} opted out after wave 1: wave 2 did not ask them "
+        f"({int((camp.ledger.asks(2)['user'] == quitter).sum())} asks).")
+    camp.ledger.close()
+    return model, progress

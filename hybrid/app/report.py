@@ -79,6 +79,22 @@ SORTING = """document.querySelectorAll("table.sortable").forEach(function (t) {
 });"""
 
 
+# tables with the class "filterable" get a search box above them: rows that do not contain what is
+# typed (any case) are hidden; plain JavaScript in the page, nothing fetched
+FILTERING = """document.querySelectorAll("table.filterable").forEach(function (t) {
+  var box = document.createElement("input");
+  box.type = "search"; box.placeholder = "Filter rows"; box.setAttribute("aria-label", "Filter the table's rows");
+  box.className = "filter";
+  t.parentNode.insertBefore(box, t);
+  box.addEventListener("input", function () {
+    var q = box.value.trim().toLowerCase();
+    Array.prototype.forEach.call(t.tBodies[0].rows, function (r) {
+      r.style.display = !q || r.textContent.toLowerCase().indexOf(q) >= 0 ? "" : "none";
+    });
+  });
+});"""
+
+
 def _table(df: pd.DataFrame, cls="") -> str:
     return df.to_html(index=False, border=0, classes=cls, float_format=lambda v: f"{v:.3f}", escape=True)
 
@@ -247,16 +263,51 @@ def new_items_section(model, items, liked, k=3, interval=0.8):
                                    for r, dd in zip(idx, dist)]})
     return (f"<h2>New items</h2><p>Expected ratings are estimates, with their {interval:.0%} interval; the main "
             "reasons are the attributes that move the expected rating most (on the rating scale); the users likely to "
-            f"like it are those whose expected rating is at least {liked:g}. Click a column's heading to sort.</p>"
-            + _table(table, "new-items sortable"))
+            f"like it are those whose expected rating is at least {liked:g}. Click a column's heading to sort; type in the "
+            "box to filter rows.</p>"
+            + _table(table, "new-items sortable filterable"))
+
+
+def campaign_section(progress: pd.DataFrame) -> str:
+    """A campaign wave by wave (:meth:`hybrid.planning.waves.Campaign.progress`): asks, expected and
+    realised answers, and the share of lists predicted against seen to stand, in a plot and a table
+    the reader sorts and filters."""
+    if progress is None or not len(progress):
+        return ""
+    p = progress
+    fig = Figure(figsize=(8, 3.2))
+    ax, bx = fig.subplots(1, 2)
+    w = p["wave"].to_numpy()
+    ax.bar(w - 0.27, p["asked"], 0.27, color="#bbb", label="asked")
+    ax.bar(w, p["expected_answers"], 0.27, color="#1f5fa8", label="answers expected")
+    ax.bar(w + 0.27, p["ratings_folded_in"], 0.27, color="#b3541e", label="answers that came")
+    ax.set(xlabel="wave", ylabel="count", title="Asks and answers", xticks=w)
+    ax.legend(fontsize=8)
+    done = p[p["answers_in"]]
+    bx.plot(done["wave"], done["kept_predicted"], marker="o", color="#1f5fa8", label="share predicted to stand")
+    bx.plot(done["wave"], done["kept_seen"], marker="s", linestyle="--", color="#b3541e", label="share seen to stand")
+    bx.set(xlabel="wave", ylabel="share of neighbour lists", ylim=(0, 1.02), title="Lists after each wave", xticks=w)
+    bx.legend(fontsize=8, loc="lower left")
+    fig.tight_layout()
+    shown = p.drop(columns=["answers_in"]).rename(columns=lambda c: c.replace("_", " "))
+    return ("<h2>Campaign</h2><p>Each wave's asks, the answers the planner expected (asks times each user's "
+            "estimated chance of answering) and those that came; the items it bought ratings for and those that "
+            "reached the target; and, once its answers were folded in with update, the share of those items' "
+            "neighbour lists the planner predicted would stand against the share that did. Predictions are "
+            "estimates. Click a heading to sort; type in the box to filter rows.</p>"
+            + _figure(fig, "Campaign waves", "Bar chart of asks, expected answers and answers per wave, and a line "
+                      "chart of the share of lists predicted and seen to stand after each wave.",
+                      f"{len(p)} wave(s); {int(p['ratings_folded_in'].sum())} answers folded in.")
+            + _table(shown, "campaign sortable filterable"))
 
 
 def build_report(model, items: pd.DataFrame, *, k=10, target=0.8, draws=64, seed=0, by=None, liked=4.0,
-                 interval=0.8, title="Catalogue coverage and sampling plan", nouns=None) -> str:
+                 interval=0.8, title="Catalogue coverage and sampling plan", nouns=None, progress=None) -> str:
     """The whole HTML page for a model and a plan's item table (``Plan.items``).
 
     ``nouns`` (:func:`hybrid.app.nouns.nouns_of`) puts the catalogue's words in its headings and
-    prose.  A plan's own target and k (its ``plan_*`` columns) win over ``target`` and ``k``, so the
+    prose; ``progress`` (a campaign's, :meth:`hybrid.planning.waves.Campaign.progress`) adds its
+    waves.  A plan's own target and k (its ``plan_*`` columns) win over ``target`` and ``k``, so the
     page's curves are drawn against what the plan was made for.
     """
     check_by(model, by)
@@ -274,8 +325,8 @@ def build_report(model, items: pd.DataFrame, *, k=10, target=0.8, draws=64, seed
             f'<p class="plan-settings">{html.escape(stated)}</p>',
             coverage_section(model, items, by), needed_section(model, items, k, target, draws, seed),
             map_section(model, items), training_section(model),
-            new_items_section(model, items, liked, interval=interval),
+            new_items_section(model, items, liked, interval=interval), campaign_section(progress),
             f'<h2>Cautions</h2><p class="caution">{html.escape(CAUTIONS)}</p>']
     return speak_html("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
                       f"<title>{html.escape(title)}</title><style>{STYLE}</style></head><body>"
-                      + "\n".join(body) + f"<script>{SORTING}</script></body></html>", nouns or GENERIC)
+                      + "\n".join(body) + f"<script>{SORTING}\n{FILTERING}</script></body></html>", nouns or GENERIC)

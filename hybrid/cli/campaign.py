@@ -8,6 +8,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import List, Optional
 
+import pandas as pd
 import typer
 
 from hybrid.app.config import load_config, settings_for
@@ -194,10 +195,15 @@ def progress(ledger: Path = LEDGER, format: str = FORMAT):
     table = camp.progress()
     if not len(table):
         raise InputError(f"{ledger}: no wave planned yet (hybrid campaign plan)")
-    emit(table, format, "the campaign, wave by wave")
+    if format != "table":
+        emit(table, format)
+        return
+    emit(_for_screen(table), "table", "the campaign, wave by wave")
     if format == "table":
-        say("Expected gain and share predicted to stand are the planner's estimates; realised gain and share seen "
-            "are measured after the answers were folded in.")
+        say("Items trusted after: of the items a wave bought ratings for, those at the target once its answers "
+            "were folded in. Expected answers, gain and list kept are the planner's estimates when it planned; what "
+            "came, the realised gain and the share of each list seen to stand are measured after the answers were "
+            "folded in with update.")
         say(CAUTION)
 
 
@@ -253,6 +259,20 @@ def erase(ledger: Path = LEDGER, user: str = typer.Argument(..., metavar="USER",
                   "opt-outs removed": counts["optouts"],
                   "model": f"written to {out} without them" if out is not None else "not given"},
                  format, "erased")
+
+
+def _for_screen(t):
+    """The progress table as people read it: each expected number beside what came, in one cell."""
+    def pair(a, b, f):
+        return [("-" if pd.isna(x) else f(x)) + "/" + ("-" if pd.isna(y) else f(y)) for x, y in zip(a, b)]
+    return pd.DataFrame({
+        "wave": t["wave"], "asked": t["asked"],
+        "answers expected/came": pair(t["expected_answers"], t["ratings_folded_in"], lambda v: f"{v:.0f}"),
+        "rate": [("-" if pd.isna(v) else f"{v:.0%}") for v in t["response_rate"]],
+        "items trusted after": [f"{a}/{b}" for a, b in zip(t["items_newly_trusted"], t["items_planned"])],
+        "gain expected/realised": pair(t["expected_gain"], t["realised_gain"], lambda v: f"{v:.2f}"),
+        "list kept predicted/seen": pair(t["kept_predicted"], t["kept_seen"], lambda v: f"{v:.2f}"),
+        "budget left": ["none" if v is None or pd.isna(v) else f"{int(v)}" for v in t["budget_left"]]})
 
 
 def _check_wave(camp, wave):

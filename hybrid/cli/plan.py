@@ -152,30 +152,44 @@ def update_command(
                   "users touched": int(table["user"].nunique())}, format, f"updated model written to {out}")
 
 
+PROTOCOLS = ("hidden", "update")
+
+
 def calibrate_command(
         ratings: str = typer.Argument(..., help="Ratings table" + TABLE_HELP),
         attributes: str = typer.Argument(..., help="Item attribute table" + TABLE_HELP),
         config: Optional[Path] = typer.Option(None, "--config", help="TOML settings file."),
         probes: int = typer.Option(120, "--probes", help="How many well-rated items to probe."),
         seed: int = typer.Option(0, "--seed", help="Seed of the probe draw."),
+        protocol: str = typer.Option("hidden", "--protocol",
+                                     help="hidden: stability against the list with all ratings; update: the share of "
+                                          "lists that stands after update, as a campaign sees it."),
         quiet: bool = typer.Option(False, "--quiet", help="No progress display."),
         format: str = typer.Option("table", "--format", help="table, csv or json.")):
     """Check the planner's numbers: hide ratings of well-rated items and compare predicted with actual.
 
-    Example: hybrid calibrate ratings.csv lots.csv --config coffee.toml --probes 60
+    With --protocol update, each probe is fitted with its first n ratings, its other ratings are
+    folded in with update, and the share of its list predicted to stand is compared with the share
+    that did.
+
+    Example: hybrid calibrate ratings.csv lots.csv --config coffee.toml --probes 60 --protocol update
     """
-    from hybrid.planning.calibration import calibrate
+    from hybrid.planning.calibration import calibrate, calibrate_updates
 
     check_format(format)
+    if protocol not in PROTOCOLS:
+        raise InputError(f"--protocol must be one of {', '.join(PROTOCOLS)}, found {protocol!r}")
     cfg = load_config(config)
     use_nouns(cfg)
     params = model_params(cfg)
     table, attrs = read_training_tables(ratings, attributes, cfg, params["schema"])
     params["holdout"] = 0.0
     with CountProgress(0, "calibrating", quiet=quiet) as bar:
-        result = calibrate(table, attrs, params, n_probe=probes, k=cfg["plan"]["k"], draws=cfg["plan"]["draws"],
-                           seed=seed, on_step=bar.step)
-    emit(result.round(4), format, "predicted against actual stability of probed items")
+        run = calibrate if protocol == "hidden" else calibrate_updates
+        result = run(table, attrs, params, n_probe=probes, k=cfg["plan"]["k"], draws=cfg["plan"]["draws"],
+                     seed=seed, on_step=bar.step)
+    emit(result.round(4), format, "predicted against actual stability of probed items" if protocol == "hidden"
+         else "share of probed items' lists predicted against seen to stand after update")
 
 
 def report_command(
@@ -183,11 +197,12 @@ def report_command(
         out: Path = typer.Option(..., "--out", help="HTML file to write."),
         plan_file: Optional[Path] = typer.Option(None, "--plan", help="A plan from `hybrid plan` (else one is made)."),
         by: Optional[str] = typer.Option(None, "--by", help="Attribute column to count statuses by."),
+        campaign: Optional[Path] = typer.Option(None, "--campaign", help="A campaign's ledger: adds its waves."),
         config: Optional[Path] = typer.Option(None, "--config", help="Settings (default: the model's)."),
         quiet: bool = typer.Option(False, "--quiet", help="No progress display.")):
     """Write one self-contained HTML report with plots for the campaign meeting.
 
-    Example: hybrid report club.hybrid --plan plan.csv --out report.html
+    Example: hybrid report club.hybrid --plan plan.csv --campaign club.ledger --out report.html
     """
     from hybrid.app.report import build_report
     from hybrid.planning.planner import plan
@@ -197,6 +212,10 @@ def report_command(
     cfg = settings_for(model, config)
     use_nouns(cfg)
     p = cfg["plan"]
+    progress = None
+    if campaign is not None:
+        from hybrid.planning.waves import Campaign
+        progress = Campaign.open(campaign).progress()
     with CountProgress(None, "writing the report", quiet=quiet):
         items = read_plan(plan_file) if plan_file is not None else plan(model, **plan_arguments(cfg)).items
         unknown = set(items["item"].astype(str)) - set(model.item_ids_)
@@ -204,7 +223,8 @@ def report_command(
             raise InputError(f"the plan lists item '{sorted(unknown)[0]}', which the model does not know",
                              file=str(plan_file))
         page = build_report(model, items, k=p["k"], target=p["target"], draws=p["draws"], seed=p["seed"], by=by,
-                            liked=cfg["score"]["liked"], interval=cfg["score"]["interval"], nouns=nouns_of(cfg))
+                            liked=cfg["score"]["liked"], interval=cfg["score"]["interval"], nouns=nouns_of(cfg),
+                            progress=progress)
     with atomic_path(out) as tmp:
         tmp.write_text(page, encoding="utf-8")
     say(f"report written to {out} ({len(page) / 1e6:.2f} MB)")

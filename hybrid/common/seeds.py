@@ -20,7 +20,7 @@ import numpy as np
 # the fit's start values draw from the seed's own stream (default_rng(seed)), every other step
 # from one of these children of it
 STEPS = ("holdout", "prior items", "variance subsets", "variance ratings", "variance draws", "evaluation folds",
-         "evaluation inner", "tune validation", "coverage folds")
+         "evaluation inner", "tune validation", "coverage folds", "loop subsets")
 
 
 def stream(seed: int, step: str, *more: int) -> np.random.Generator:

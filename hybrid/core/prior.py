@@ -149,8 +149,8 @@ def learn_prior(problem: Problem, F: Factors, sigma2, seed, n_jobs=1, rounds=ROU
     The well-rated items are split into ``folds``; each fold is held out in
     turn.  With ``recalibrate`` the prior and noise scales are checked on the
     held-out items too (:mod:`hybrid.core.variance_scales`).  Returns ``(Psi, sigma2_new,
-    (kappa_prior, kappa_noise))``: the prior covariance and the variance of a
-    new rating, both recalibrated.
+    (kappa_prior, kappa_noise), folds)``: the prior covariance and the variance of a
+    new rating, both recalibrated, and the held-out folds (for :func:`loop_scale`).
     """
     A, weight = problem.A, problem.weight
     held = held_out_set(problem.data.item_counts(), seed, fraction=1.0, most=400 * folds)
@@ -165,4 +165,4 @@ def learn_prior(problem: Problem, F: Factors, sigma2, seed, n_jobs=1, rounds=ROU
     if recalibrate and all(len(f.pool) > 40 for f in parts):
         scales = variance_scales(parts, Psi, sigma2, 1 if F.biases else 0, seed=seed, n_jobs=n_jobs)
     kp, kn = scales
-    return kp * Psi, kn * sigma2, scales
+    return kp * Psi, kn * sigma2, scales, parts

@@ -102,6 +102,7 @@ class Factors:
     history: list = field(default_factory=list)
     lam_map: float | None = None
     scales: tuple = (1.0, 1.0)
+    loop_scales: tuple = ()   # (ratings, scale) pairs of hybrid.core.loop_scales.loop_scales
     sse: float | None = None
     spread: np.ndarray | None = None   # the learned prior covariance (None: sigma^2 P^-1)
     timings: dict = field(default_factory=dict)   # seconds of the finishing stages

@@ -22,6 +22,7 @@ import time
 import numpy as np
 
 from hybrid.core.blocks import blas_threads
+from hybrid.core.loop_scales import loop_scales
 from hybrid.core.mapsolve import block_diagonal
 from hybrid.core.prior import learn_prior, predictive_sigma2, well_rated
 from hybrid.core.steps import (
@@ -95,7 +96,7 @@ def _finish(problem: Problem, F: Factors, prior, seed, n_jobs, settle=30):
     sigma2_new = predictive_sigma2(data, F, lam_user, fit_sigma2, well_rated(counts), seed=seed)
     if prior == "learned":
         t0 = time.perf_counter()
-        Psi, sigma2_new, F.scales = learn_prior(problem, F, sigma2_new, seed, n_jobs)
+        Psi, sigma2_new, F.scales, folds = learn_prior(problem, F, sigma2_new, seed, n_jobs)
         F.spread = Psi    # what the planner's uncertainty reads
         # The fit's penalty is the learned precision with no direction weaker than the
         # penalty chosen on held-out ratings: the learned prior knows that biases vary
@@ -111,6 +112,9 @@ def _finish(problem: Problem, F: Factors, prior, seed, n_jobs, settle=30):
             if np.abs(F.W - W_old).max() <= 1e-4 * max(np.abs(W_old).max(), 1.0):
                 break
         item_step(data, F, A, weight, n_jobs)
+        if all(len(f.pool) > 40 for f in folds):   # as the two scales: enough held-out items to judge by
+            # how far the trainer's estimates move when ratings are folded in (the third scale)
+            F.loop_scales = loop_scales(folds, Psi, fit_sigma2, sigma2_new, F.P, seed=seed)
         F.timings["learned prior"] = time.perf_counter() - t0
     # the last item step leaves every rated item's vector at its exact posterior mean under
     # the final users, map and penalty: the planner samples around these very vectors

@@ -130,3 +130,4 @@ def variance_scales(folds, Psi, sigma2, off, k=10, draws=64, seed=0, low_n=(0,),
     kp = grid_descent(lambda c: _gap(low, m_list, c * Psi, sigma2, k, eps, off, n_jobs))
     kn = grid_descent(lambda c: _gap(high, m_list, kp * Psi, c * sigma2, k, eps, off, n_jobs))
     return float(kp), float(kn)
+

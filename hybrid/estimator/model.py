@@ -287,7 +287,8 @@ class HybridFactorModel(Scores, FittedViews, BaseEstimator):
             "sigma2": self.sigma2_, "sigma2_new": self.sigma2_new_, "lam_user": self.lam_user_,
             "lam_item": self.lam_item_, "lam_map": self.lam_map_,
             "penalty_path": [[p, e] for p, e in self.penalty_path_],
-            "variance_scales": list(F.scales), "launch_offset": self.launch_offset_,
+            "variance_scales": list(F.scales), "loop_scales": [list(pair) for pair in F.loop_scales],
+            "launch_offset": self.launch_offset_,
             "launch_spread": self.launch_spread_,
             "seconds": time.perf_counter() - t0, "stage_seconds": stages, "engine": engine.provenance()})
         return self

@@ -85,6 +85,10 @@ class Assessor:
         self.responders = responders
         self.threshold = responder_threshold
         self.C = responder_moment(model, "active") if responders == "active" else None
+        # how much wider than the posterior the trainer's estimates move when ratings are folded
+        # in, by the item's ratings (hybrid.core.loop_scales; 1 if not measured)
+        pairs = np.asarray((getattr(model, "metrics_", None) or {}).get("loop_scales") or [[1, 1.0]], float)
+        self.loop_scale = np.interp(np.log1p(model.item_counts_), np.log1p(pairs[:, 0]), pairs[:, 1])
 
     def _pool(self, min_ratings):
         """Trusted candidates: items with at least ``min_ratings`` ratings, or the
@@ -114,7 +118,8 @@ class Assessor:
         moves by ``K B'(y - B z)`` with ``K = (G + B'B + c P)^-1`` (``G`` the Gram matrix of the
         ratings it has, ``P`` the trainer's prior precision, ``c`` the item's prior weight); the
         new ratings ``y`` scatter around ``B z`` with the noise of a new rating and with the
-        block's own uncertainty ``Sigma`` (the planner's posterior).  With ``n`` ratings from
+        block's own uncertainty ``Sigma`` (the planner's posterior, widened by the fit's loop scale
+        for the item's count of ratings, :mod:`hybrid.core.loop_scales`).  With ``n`` ratings from
         rows ``b`` of second moment ``C`` and ``D = E[(b' Sigma b) b b']``, the expectation over
         the raters is taken with ``E[B'B] = n C`` and ``E[B'B Sigma B'B] = n (n - 1) C Sigma C + n D``:
         ``K (n (n - 1) C Sigma C + n D + n sigma_new^2 C) K'``.
@@ -122,10 +127,10 @@ class Assessor:
         m = self.model
         items = np.asarray(items)
         n = np.broadcast_to(np.asarray(more, float), items.shape)[:, None, None]
-        cov = self.cov_now[items]
+        cov = self.cov_now[items] * self.loop_scale[items][:, None, None]
         users = self._moment_users()
-        B = user_design(m)[users]
         w = self._weights(items)[:, users] * self._unrated(items, users)
+        B = user_design(m)[users]
         w = w / np.maximum(w.sum(1, keepdims=True), 1e-12)
         # the rater is re-solved first and takes up part of the surprise: a share q / (1 + q) of
         # it, q = a' (G_u + lam_user I)^-1 a the new rating's leverage in its rater's solve
@@ -156,15 +161,22 @@ class Assessor:
         return np.sort(np.random.default_rng(0).choice(U, _MOMENT_USERS, replace=False))
 
     def _user_inverse(self, users):
-        """``(G_u + lam_user I)^-1`` of ``users``: each one's own solve in the trainer's user step."""
-        if getattr(self, "_uinv", None) is None or len(self._uinv) != len(users):
-            F = self.model.factors_
-            ib, ix = F.split(F.item)
-            R = self.model.rating_data().by_user[users]
-            offset = np.zeros(len(ix)) if ib is None else ib
-            G = row_grams(R.indptr, R.indices, R.data, design(ix, ib), offset)[0]
-            self._uinv = np.linalg.inv(G + self.model.lam_user_ * np.eye(G.shape[1]))
-        return self._uinv
+        """``(G_u + lam_user I)^-1`` of ``users``: each one's own solve in the trainer's user step
+        (kept for the fixed sample of :meth:`_moment_users`, worked out afresh for others)."""
+        cached = getattr(self, "_uinv", None)
+        if cached is not None and np.array_equal(cached[0], users):
+            return cached[1]
+        F = self.model.factors_
+        ib, ix = F.split(F.item)
+        if getattr(self, "_by_user", None) is None:
+            self._by_user = self.model.rating_data().by_user
+        R = self._by_user[users]
+        offset = np.zeros(len(ix)) if ib is None else ib
+        G = row_grams(R.indptr, R.indices, R.data, design(ix, ib), offset)[0]
+        inverse = np.linalg.inv(G + self.model.lam_user_ * np.eye(G.shape[1]))
+        if len(users) == len(self._moment_users()):
+            self._uinv = (np.asarray(users), inverse)
+        return inverse
 
     def _weights(self, items):
         """(b, U) weight of each user among the responders assumed for each item."""
@@ -177,7 +189,7 @@ class Assessor:
 
     def kept(self, items, more, draws=slice(None)):
         """(expected kept share, se) of each item's current top-k list after ``more`` further
-        ratings are folded in (:func:`expected_kept`)."""
+        ratings are folded in (:func:`hybrid.planning.kept.expected_kept`)."""
         items = np.asarray(items)
         more = np.broadcast_to(np.asarray(more, float), items.shape)
         mean, se = np.ones(len(items)), np.zeros(len(items))
@@ -222,89 +234,6 @@ class ClusterAssessor:
 
     def __getattr__(self, name):
         return getattr(self.local, name)
-
-    def movement(self, items, more):
-        """Covariance (b, d, d) of how far each item's block moves when ``more`` ratings from the
-        responders assumed are folded in by :func:`hybrid.estimator.updates.fold_in`.
-
-        The update re-solves the block as the trainer does, ``(G + B'B + c P)^-1 (...)``, so it
-        moves by ``K B'(y - B z)`` with ``K = (G + B'B + c P)^-1`` (``G`` the Gram matrix of the
-        ratings it has, ``P`` the trainer's prior precision, ``c`` the item's prior weight); the
-        new ratings ``y`` scatter around ``B z`` with the noise of a new rating and with the
-        block's own uncertainty ``Sigma`` (the planner's posterior).  With ``n`` ratings from
-        rows ``b`` of second moment ``C`` and ``D = E[(b' Sigma b) b b']``, the expectation over
-        the raters is taken with ``E[B'B] = n C`` and ``E[B'B Sigma B'B] = n (n - 1) C Sigma C + n D``:
-        ``K (n (n - 1) C Sigma C + n D + n sigma_new^2 C) K'``.
-        """
-        m = self.model
-        items = np.asarray(items)
-        n = np.broadcast_to(np.asarray(more, float), items.shape)[:, None, None]
-        cov = self.cov_now[items]
-        users = self._moment_users()
-        B = user_design(m)[users]
-        w = self._weights(items)[:, users] * self._unrated(items, users)
-        w = w / np.maximum(w.sum(1, keepdims=True), 1e-12)
-        # the rater is re-solved first and takes up part of the surprise: a share q / (1 + q) of
-        # it, q = a' (G_u + lam_user I)^-1 a the new rating's leverage in its rater's solve
-        a = self.model.item_blocks_[items].copy()
-        if m.biases:
-            a[:, 0] = 1.0
-        keep = 1.0 / (1.0 + np.einsum("bd,ude,be->bu", a, self._user_inverse(users), a))
-        C = np.einsum("bu,ud,ue->bde", w, B, B)
-        Cs = np.einsum("bu,ud,ue->bde", w * keep, B, B)
-        quad = np.einsum("ud,bde,ue->bu", B, cov, B)
-        Dss = np.einsum("bu,ud,ue->bde", w * keep ** 2 * quad, B, B)
-        Css = np.einsum("bu,ud,ue->bde", w * keep ** 2, B, B)
-        K = np.linalg.inv(self.grams[items] + n * C + scaled(m.prior_precision_, self.weight[items]))
-        middle = n * (n - 1) * Cs @ cov @ Cs + n * Dss + n * m.sigma2_new_ * Css
-        return K @ middle @ K.transpose(0, 2, 1)
-
-    def _unrated(self, items, users):
-        """(b, len(users)) 1 where the user has not rated the item: only they can be asked."""
-        if getattr(self, "_by_item", None) is None:
-            self._by_item = self.model.rating_data().by_item
-        return 1.0 - self._by_item[np.asarray(items)][:, users].astype(bool).toarray()
-
-    def _moment_users(self):
-        """The users over whom an update's moments are averaged (a fixed sample of a large set)."""
-        U = len(self.model.user_ids_)
-        if U <= _MOMENT_USERS:
-            return np.arange(U)
-        return np.sort(np.random.default_rng(0).choice(U, _MOMENT_USERS, replace=False))
-
-    def _user_inverse(self, users):
-        """``(G_u + lam_user I)^-1`` of ``users``: each one's own solve in the trainer's user step."""
-        if getattr(self, "_uinv", None) is None or len(self._uinv) != len(users):
-            F = self.model.factors_
-            ib, ix = F.split(F.item)
-            R = self.model.rating_data().by_user[users]
-            offset = np.zeros(len(ix)) if ib is None else ib
-            G = row_grams(R.indptr, R.indices, R.data, design(ix, ib), offset)[0]
-            self._uinv = np.linalg.inv(G + self.model.lam_user_ * np.eye(G.shape[1]))
-        return self._uinv
-
-    def _weights(self, items):
-        """(b, U) weight of each user among the responders assumed for each item."""
-        w = activity_share(self.model.user_counts_)
-        if self.C is not None:
-            return np.broadcast_to(w, (len(items), len(w)))
-        z = self.model.item_blocks_[items]
-        scores = next(self.model.score_blocks(z, chunk=len(z)))[1]
-        return (scores >= self.threshold) * w[None, :]
-
-    def kept(self, items, more, draws=slice(None)):
-        """(expected kept share, se) of each item's current top-k list after ``more`` further
-        ratings are folded in (:func:`expected_kept`)."""
-        items = np.asarray(items)
-        more = np.broadcast_to(np.asarray(more, float), items.shape)
-        mean, se = np.ones(len(items)), np.zeros(len(items))
-        for s in range(0, len(items), _ITEMS_PER_BLOCK):
-            blk = items[s:s + _ITEMS_PER_BLOCK]
-            cov = self.movement(blk, more[s:s + _ITEMS_PER_BLOCK])
-            mean[s:s + len(blk)], se[s:s + len(blk)] = stability(
-                self.vectors[blk], draw_factor(vector_part(self.model, cov)), self.vectors[self.pool], self.k,
-                self.eps[draws], exclude=self.pool_pos[blk], n_jobs=threads(self.model.n_jobs))
-        return mean, se
 
     def at(self, items, extra, draws=slice(None)):
         from hybrid.engines.cluster import map_chunks

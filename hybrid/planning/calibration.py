@@ -113,8 +113,9 @@ def calibrate_updates(ratings: pd.DataFrame, attributes: pd.DataFrame, params: d
     The loop a user runs, for each ``n``: fit with each probe item's first ``n`` ratings
     inside the training data (the rest of its ratings held back), take the planner's
     prediction of the share of each probe's top-``k`` list that stands after its remaining
-    ratings, fold those ratings in with ``fold_in`` (what ``hybrid update`` runs), and compare
-    the lists before and after on the planner's own candidate pool.  One row per ``n``:
+    ratings (:func:`~hybrid.planning.kept.expected_kept`, from the responders it assumes), fold
+    those ratings in with ``fold_in`` (what ``hybrid update`` runs), and compare the lists
+    before and after on the planner's own candidate pool.  One row per ``n``:
     ``n``, ``items``, ``more`` (median ratings folded in), ``predicted``, ``seen``, ``seen_se``
     and ``gap``.
     """

@@ -77,3 +77,4 @@ def current_lists(model, where, pool, k):
     off = 1 if model.biases else 0
     V = model.item_blocks_[:, off:]
     return nearest(V[where], V[pool], k, exclude=pd.Index(pool).get_indexer(where))[0]
+

@@ -35,6 +35,8 @@ from hybrid.planning.campaign import (
 )
 from hybrid.planning.responses import Contacts
 
+WELL_RATED = 100   # ratings that make an item well rated, for the summary's yardstick of a target
+
 
 @dataclass
 class Plan:
@@ -54,6 +56,9 @@ class Plan:
             (self.items["reaches_target"] & (self.items["status"] != STATUS[2])).sum())
         if self.settings.get("aim") == "gain":   # its whole curves drawn: the stability it adds
             out["stability gained in all"] = round(self.gain(), 4)
+        well = self.items.loc[self.items["ratings"] >= WELL_RATED, "stability"]
+        if len(well):   # what a list can reach on this catalogue: a target far above it is out of reach
+            out[f"median stability of items with {WELL_RATED}+ ratings"] = round(float(well.median()), 3)
         out["asks"] = len(self.asks)
         # a wave asks more people than it plans ratings: not everyone answers
         out["expected answers"] = round(float(self.asks["answer_chance"].sum()), 1)
