@@ -96,7 +96,9 @@ FILTERING = """document.querySelectorAll("table.filterable").forEach(function (t
 
 
 def _table(df: pd.DataFrame, cls="") -> str:
-    return df.to_html(index=False, border=0, classes=cls, float_format=lambda v: f"{v:.3f}", escape=True)
+    """Every table of the report sorts by a click on a heading and filters as the reader types."""
+    return df.to_html(index=False, border=0, classes=f"{cls} sortable filterable".strip(),
+                      float_format=lambda v: f"{v:.3f}", escape=True)
 
 
 def _groups(column: pd.Series, bins: int = 5) -> pd.Series:
@@ -265,7 +267,7 @@ def new_items_section(model, items, liked, k=3, interval=0.8):
             "reasons are the attributes that move the expected rating most (on the rating scale); the users likely to "
             f"like it are those whose expected rating is at least {liked:g}. Click a column's heading to sort; type in the "
             "box to filter rows.</p>"
-            + _table(table, "new-items sortable filterable"))
+            + _table(table, "new-items"))
 
 
 def campaign_section(progress: pd.DataFrame) -> str:
@@ -298,7 +300,7 @@ def campaign_section(progress: pd.DataFrame) -> str:
             + _figure(fig, "Campaign waves", "Bar chart of asks, expected answers and answers per wave, and a line "
                       "chart of the share of lists predicted and seen to stand after each wave.",
                       f"{len(p)} wave(s); {int(p['ratings_folded_in'].sum())} answers folded in.")
-            + _table(shown, "campaign sortable filterable"))
+            + _table(shown, "campaign"))
 
 
 def build_report(model, items: pd.DataFrame, *, k=10, target=0.8, draws=64, seed=0, by=None, liked=4.0,

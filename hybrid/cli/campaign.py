@@ -21,6 +21,7 @@ from hybrid.cli.display import (
     emit,
     emit_mapping,
     guarded,
+    note,
     say,
     setting_help,
     use_nouns,
@@ -168,6 +169,11 @@ def answers(ledger: Path = LEDGER, model_file: Path = MODEL,
     model = HybridFactorModel.load(model_file)
     cfg = settings_for(model, None)
     use_nouns(cfg)
+    waves = camp.ledger.waves()
+    known = set(waves["model_fingerprint"]) | set(waves["folded_into"].dropna())
+    if model.fingerprint_ not in known:
+        note(f"{model_file} is not a model this campaign planned from or folded answers into "
+             "(its fingerprint differs); the answers are folded into it all the same")
     table = read_ratings(answers_file, cfg)
     attrs = None if new_items is None else read_attributes(new_items, cfg, model.features_.spec(), require_all=False)
     # the model is written (atomically) before the ledger records the import: a failure between
@@ -267,11 +273,11 @@ def _for_screen(t):
         return [("-" if pd.isna(x) else f(x)) + "/" + ("-" if pd.isna(y) else f(y)) for x, y in zip(a, b)]
     return pd.DataFrame({
         "wave": t["wave"], "asked": t["asked"],
-        "answers expected/came": pair(t["expected_answers"], t["ratings_folded_in"], lambda v: f"{v:.0f}"),
+        "answers expected / came": pair(t["expected_answers"], t["ratings_folded_in"], lambda v: f"{v:.0f}"),
         "rate": [("-" if pd.isna(v) else f"{v:.0%}") for v in t["response_rate"]],
-        "items trusted after": [f"{a}/{b}" for a, b in zip(t["items_newly_trusted"], t["items_planned"])],
-        "gain expected/realised": pair(t["expected_gain"], t["realised_gain"], lambda v: f"{v:.2f}"),
-        "list kept predicted/seen": pair(t["kept_predicted"], t["kept_seen"], lambda v: f"{v:.2f}"),
+        "items trusted after / planned": [f"{a}/{b}" for a, b in zip(t["items_newly_trusted"], t["items_planned"])],
+        "gain expected / realised": pair(t["expected_gain"], t["realised_gain"], lambda v: f"{v:.2f}"),
+        "list kept predicted / seen": pair(t["kept_predicted"], t["kept_seen"], lambda v: f"{v:.2f}"),
         "budget left": ["none" if v is None or pd.isna(v) else f"{int(v)}" for v in t["budget_left"]]})
 
 

@@ -66,14 +66,15 @@ def gaussian_posterior(grams, rhs, prior_mean, P, sigma2):
 def covariances(model, grams, weight, extra=None):
     """Posterior covariances of a block of items.
 
-    ``(G / sigma^2 + extra / sigma_new^2 + c Psi^-1)^-1``: the ratings the model
-    was fitted to count with the fit's noise, ``extra`` (the expected ``B^T B``
-    of ratings still to come) with the noise of a new rating, ``Psi`` being
-    the prior covariance.
+    ``(G / sigma^2 + extra / sigma^2 + c Psi^-1)^-1``: the ratings the model was fitted to
+    count with the fit's noise, and so do ``extra`` (the expected ``B^T B`` of ratings still to
+    come), since ``update`` folds them in as the fit's own: the stability predicted after ``n``
+    more ratings is the stability the model will report once they are in.  ``Psi`` is the prior
+    covariance.
     """
     prec = grams / model.sigma2_ + scaled(np.linalg.inv(model.prior_covariance_), weight)
     if extra is not None:
-        prec = prec + extra / model.sigma2_new_
+        prec = prec + extra / model.sigma2_
     return np.linalg.inv(prec)
 
 
