@@ -112,3 +112,47 @@ def test_a_full_disk_keeps_the_previous_file_and_says_so(files, tmp_path, monkey
     assert len(lines) == 1 and "no space left on device" in lines[0] and "nothing was written" in lines[0], lines
     assert _digest(out) == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["plan.csv"]     # no temporary file left
+
+
+def test_sigkill_during_an_import_leaves_the_ledger_whole(files, tmp_path):
+    """A campaign import killed at any moment: the ledger holds the whole import or none of it;
+    when it holds it, the model it names is on disk (the model is written first); when it holds
+    none, importing again works."""
+    import shutil
+
+    from hybrid.io.ledger import Ledger
+
+    answers = pd.read_csv(files["answers"])
+
+    def run(ledger, out):
+        return [sys.executable, "-m", "hybrid", "campaign", "answers", str(ledger), files["model"], files["answers"],
+                "--out", str(out)]
+
+    timing = tmp_path / "timing.ledger"
+    shutil.copyfile(files["ledger"], timing)
+    t0 = time.perf_counter()
+    subprocess.run(run(timing, tmp_path / "t.hybrid"), check=True, capture_output=True, timeout=300)
+    took = time.perf_counter() - t0
+    seen = set()
+    for j, share in enumerate((0.3, 0.6, 0.8, 0.9, 0.97)):
+        ledger, out = tmp_path / f"c{j}.ledger", tmp_path / f"m{j}.hybrid"
+        shutil.copyfile(files["ledger"], ledger)
+        child = subprocess.Popen(run(ledger, out), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        time.sleep(share * took)
+        child.send_signal(signal.SIGKILL)
+        child.wait(timeout=60)
+        led = Ledger.open(ledger)
+        imports = led.conn.execute("SELECT COUNT(*) FROM imports").fetchone()[0]
+        got = len(led.answers())
+        if imports:
+            seen.add("imported")
+            assert got == len(answers)
+            assert led.waves()["folded_into"].iloc[-1] == HybridFactorModel.load(out).fingerprint_
+        else:
+            seen.add("not imported")
+            assert got == 0
+            led.close()
+            done = subprocess.run(run(ledger, out), capture_output=True, text=True, timeout=300)
+            assert done.returncode == 0, done.stderr
+    print(f"\nkilled imports: {sorted(seen)}")
+    assert seen     # (which moments fall where depends on the machine; both are checked when they occur)

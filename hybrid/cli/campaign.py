@@ -5,6 +5,7 @@ progress, opt-out, erase.  The library does the work (:mod:`hybrid.planning.wave
 """
 from __future__ import annotations
 
+import functools
 from pathlib import Path
 from typing import List, Optional
 
@@ -45,14 +46,25 @@ def _open(ledger: Path, config=None):
     from hybrid.planning.waves import Campaign
 
     c = Campaign.open(ledger)
+    _OPENED.append(c)
     cfg = load_config(config) if config is not None else c.settings.get("about") or load_config(None)
     use_nouns(cfg)
     return c, cfg
 
 
+_OPENED = []   # the ledgers a command opened: closed when it ends, however it ends
+
+
 def _command(name):
     def register(fn):
-        campaign_app.command(name, cls=Command)(guarded(fn))
+        @functools.wraps(fn)
+        def closing(*args, **kwargs):
+            try:
+                return fn(*args, **kwargs)
+            finally:
+                while _OPENED:
+                    _OPENED.pop().close()
+        campaign_app.command(name, cls=Command)(guarded(closing))
         return fn
     return register
 
@@ -84,6 +96,7 @@ def start(ledger: Path = LEDGER, model_file: Path = MODEL,
                           cooling_off=c["cooling_off"] if cooling_off is None else cooling_off,
                           first_response=c["first_response"] if first_response is None else first_response,
                           plan_settings=plan_settings, about=cfg)
+    _OPENED.append(camp)
     s = camp.settings
     emit_mapping({"budget (ratings)": s["budget"] if s["budget"] is not None else "none (each wave gives its own)",
                   "asks per user, all waves": s["per_user"], "cooling-off (waves)": s["cooling_off"],

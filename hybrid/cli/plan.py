@@ -215,7 +215,8 @@ def report_command(
     progress = None
     if campaign is not None:
         from hybrid.planning.waves import Campaign
-        progress = Campaign.open(campaign).progress()
+        with Campaign.open(campaign) as camp:
+            progress = camp.progress()
     with CountProgress(None, "writing the report", quiet=quiet):
         items = read_plan(plan_file) if plan_file is not None else plan(model, **plan_arguments(cfg)).items
         unknown = set(items["item"].astype(str)) - set(model.item_ids_)

@@ -152,11 +152,20 @@ class Ledger:
     def close(self) -> None:
         self.conn.close()
 
+    def __enter__(self) -> "Ledger":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
     @contextmanager
     def change(self):
-        """One transaction: everything inside lands, or nothing does."""
+        """One transaction: everything inside lands, or nothing does.  Once it has landed the
+        write-ahead log is copied into the file (when no reader holds it), so that the file
+        alone, copied or backed up, holds the whole ledger."""
         with _transaction(self.conn):
             yield self.conn
+        self.conn.execute("PRAGMA wal_checkpoint(PASSIVE)")
 
     # ------------------------------------------------------------ settings
     @property

@@ -81,6 +81,15 @@ class Campaign:
     def open(cls, path) -> "Campaign":
         return cls(Ledger.open(path))
 
+    def close(self) -> None:
+        self.ledger.close()
+
+    def __enter__(self) -> "Campaign":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
     @property
     def settings(self) -> dict:
         return self.ledger.settings
