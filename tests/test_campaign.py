@@ -213,3 +213,25 @@ def test_the_contact_sheet_has_one_row_per_user(tmp_path, fitted):
     assert sheet["n_items"].sum() == len(p.asks) and (sheet["n_items"] <= 3).all()
     row = sheet.iloc[0]
     assert set(row["items"].split("|")) == set(p.asks.loc[p.asks["user"] == row["user"], "item"])
+
+
+def test_a_cumulative_export_skips_what_is_in_and_a_wrong_file_is_refused(tmp_path, fitted):
+    m = _copy(fitted)
+    c = _start(tmp_path, m, budget=300)
+    _, p = c.plan_wave(m, budget=60)
+    first = _answers(p.asks, pd.Series(0.5, index=m.user_ids_), np.random.default_rng(4))
+    half = len(first) // 2
+    m, _ = c.import_answers(m, first.iloc[:half], "early.csv")
+    # the survey tool exports every answer so far: those already in are skipped, the rest come in
+    m, info = c.import_answers(m, first, "all-so-far.csv")
+    assert info["already in the model (skipped)"] == half and info["answers"] == len(first) - half
+    assert len(c.ledger.answers()) == len(first)
+    # the training ratings are not a wave's answers: refused, nothing changed
+    u, i, r = m.ratings_
+    held = pd.DataFrame({"user": m.user_ids_[u], "item": m.item_ids_[i], "rating": r}).head(1000)
+    with pytest.raises(InputError, match="all 1000 answers are ratings the model already holds"):
+        c.import_answers(m, held, "ratings.csv")
+    stray = held.assign(rating=np.where(held["rating"] < 3, 5.0, 1.0))
+    with pytest.raises(InputError, match="never asked for"):
+        c.import_answers(m, stray, "ratings-changed.csv")
+    assert len(c.ledger.answers()) == len(first)

@@ -91,7 +91,7 @@ def start(ledger: Path = LEDGER, model_file: Path = MODEL,
     cfg = settings_for(model, config)
     use_nouns(cfg)
     c = cfg["campaign"]
-    plan_settings = {k: v for k, v in plan_arguments(cfg, priority=priority).items()}
+    plan_settings = plan_arguments(cfg, priority=priority)
     camp = Campaign.start(ledger, model, budget=budget, per_user=c["per_user"] if per_user is None else per_user,
                           cooling_off=c["cooling_off"] if cooling_off is None else cooling_off,
                           first_response=c["first_response"] if first_response is None else first_response,
@@ -194,7 +194,9 @@ def answers(ledger: Path = LEDGER, model_file: Path = MODEL,
     model, info = camp.import_answers(model, table, source_name(answers_file), wave=wave, attributes=attrs,
                                       save=lambda m: m.save(out))
     row = camp.progress().set_index("wave").loc[info["wave"]]
-    emit_mapping({"wave": info["wave"], "answers": info["answers"], "of them unasked (kept, flagged)": info["unasked"],
+    emit_mapping({"wave": info["wave"], "answers": info["answers"],
+                  "already in the model with the same values (skipped)": info["already in the model (skipped)"],
+                  "of them unasked (kept, flagged)": info["unasked"],
                   "asks in the wave": info["asks in the wave"], "response rate": round(float(row["response_rate"]), 3),
                   "items newly trusted": int(row["items_newly_trusted"]),
                   "share of lists predicted to stand": round(float(row["kept_predicted"]), 3),
@@ -218,12 +220,11 @@ def progress(ledger: Path = LEDGER, format: str = FORMAT):
         emit(table, format)
         return
     emit(_for_screen(table), "table", "the campaign, wave by wave")
-    if format == "table":
-        say("Items trusted after: of the items a wave bought ratings for, those at the target once its answers "
-            "were folded in. Expected answers, gain and list kept are the planner's estimates when it planned; what "
-            "came, the realised gain and the share of each list seen to stand are measured after the answers were "
-            "folded in with update.")
-        say(CAUTION)
+    say("Items trusted after: of the items a wave bought ratings for, those at the target once its answers "
+        "were folded in. Expected answers, gain and list kept are the planner's estimates when it planned; what "
+        "came, the realised gain and the share of each list seen to stand are measured after the answers were "
+        "folded in with update.")
+    say(CAUTION)
 
 
 @_command("opt-out")

@@ -120,6 +120,13 @@ def import_counts(model, ratings: pd.DataFrame) -> dict:
     >>> import_counts(m, again)
     {'added': 0, 'changed': 2, 'unchanged': 1}
     """
+    present, same = held_already(model, ratings)
+    return {"added": int((~present).sum()), "changed": int((present & ~same).sum()), "unchanged": int(same.sum())}
+
+
+def held_already(model, ratings: pd.DataFrame):
+    """Per row of ``ratings`` (user, item, rating): whether the model holds a rating of that pair,
+    and whether it holds this very value (two boolean arrays)."""
     n_items = len(model.item_ids_)
     u = pd.Index(model.user_ids_).get_indexer(ratings["user"].astype(str))
     i = pd.Index(model.item_ids_).get_indexer(ratings["item"].astype(str))
@@ -128,8 +135,7 @@ def import_counts(model, ratings: pd.DataFrame) -> dict:
     keys = np.where((u >= 0) & (i >= 0), u.astype(np.int64) * n_items + i, -1)
     known = held.reindex(keys).to_numpy()
     present = ~np.isnan(known)
-    same = present & (known == ratings["rating"].to_numpy(float))
-    return {"added": int((~present).sum()), "changed": int((present & ~same).sum()), "unchanged": int(same.sum())}
+    return present, present & (known == ratings["rating"].to_numpy(float))
 
 
 def _add_items(model, ratings, attributes):

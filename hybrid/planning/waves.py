@@ -23,6 +23,7 @@ import pandas as pd
 from hybrid.common.errors import InputError, did_you_mean_id
 from hybrid.common.limits import check_campaign, check_plan, defaults
 from hybrid.core.posterior import overlap_of_lists
+from hybrid.estimator.updates import held_already
 from hybrid.io.ledger import Ledger
 from hybrid.planning.assess import Assessor
 from hybrid.planning.kept import current_lists
@@ -99,10 +100,11 @@ class Campaign:
         """Whom wave ``wave`` (by default the next) may ask, and each user's chance of answering."""
         s, led = self.settings, self.ledger
         wave = led.last_wave() + 1 if wave is None else wave
-        answered_waves = led.answers()["wave"].unique().tolist()
-        return contacts_from_history(model, led.asks(), led.answers(), led.opted_out(), wave=wave,
+        answers = led.answers()
+        return contacts_from_history(model, led.asks(), answers, led.opted_out(), wave=wave,
                                      per_user=s["per_user"], cooling_off=s["cooling_off"],
-                                     first_response=s["first_response"], answered_waves=answered_waves)
+                                     first_response=s["first_response"],
+                                     answered_waves=answers["wave"].unique().tolist())
 
     def budget_left(self) -> int | None:
         """Ratings the campaign may still collect (its budget less the answers folded in)."""
@@ -157,6 +159,16 @@ class Campaign:
         if before_wave is not None:
             raise InputError(f"these answers were imported before (wave {before_wave}); nothing changed")
         _check_known(model, answers, attributes)
+        # a rating the model already holds with the same value is not an answer to this wave: a
+        # cumulative export repeats the answers imported before, a wrong file (the training
+        # ratings) is nothing but such rows
+        same = held_already(model, answers)[1]
+        if same.all():
+            raise InputError(f"all {len(answers)} answers are ratings the model already holds with the same values "
+                             "(imported before, or the training ratings?); nothing changed")
+        skipped = int(same.sum())
+        answers = answers[~same]
+        _check_asked(led, wave, answers)
         items = led.wave_items(wave)
         outcome, fp = _fold_and_compare(model, answers, items, self.settings["plan"], attributes)
         if save is not None:
@@ -165,7 +177,8 @@ class Campaign:
         led.record_import(wave, digest, source, rows, fp, outcome)
         got = led.answers()
         mine = got[(got["wave"] == wave) & (got["source"] == source)]
-        return model, {"wave": wave, "answers": len(answers), "unasked": int(mine["asked_wave"].isna().sum()),
+        return model, {"wave": wave, "answers": len(answers), "already in the model (skipped)": skipped,
+                       "unasked": int(mine["asked_wave"].isna().sum()),
                        "asks in the wave": len(led.asks(wave)), "model fingerprint": fp}
 
     # ------------------------------------------------------------ what the campaign did
@@ -232,6 +245,19 @@ def answers_digest(answers: pd.DataFrame) -> str:
     table = answers[["user", "item", "rating"]].astype({"user": str, "item": str, "rating": float})
     text = table.sort_values(["user", "item", "rating"]).to_csv(index=False, float_format="%.6g")
     return hashlib.sha256(text.encode()).hexdigest()[:32]
+
+
+def _check_asked(led, wave, answers):
+    """Refuse a file most of whose rows nobody asked for: more unasked answers than the wave had
+    asks is not a wave's answers (other ratings go in with ``update``)."""
+    asked = led.asks()
+    asked = set(zip(asked.loc[asked["wave"] <= wave, "user"], asked.loc[asked["wave"] <= wave, "item"]))
+    unasked = sum((str(u), str(i)) not in asked for u, i in zip(answers["user"], answers["item"]))
+    asks = len(led.asks(wave))
+    if unasked > asks:
+        raise InputError(f"{unasked} of the {len(answers)} answers were never asked for, more than wave {wave}'s "
+                         f"{asks} asks: not this campaign's answers? (fold other ratings in with `hybrid update`); "
+                         "nothing changed")
 
 
 def _check_known(model, answers, attributes):
