@@ -128,8 +128,9 @@ class Assessor:
         items = np.asarray(items)
         n = np.broadcast_to(np.asarray(more, float), items.shape)[:, None, None]
         cov = self.cov_now[items] * self.loop_scale[items][:, None, None]
-        users = self._moment_users()
-        w = self._weights(items)[:, users] * self._unrated(items, users)
+        users, by_item, inverse = self._moments()
+        # only users who have not rated an item can be asked for it
+        w = self._weights(items)[:, users] * (1.0 - by_item[items][:, users].astype(bool).toarray())
         B = user_design(m)[users]
         w = w / np.maximum(w.sum(1, keepdims=True), 1e-12)
         # the rater is re-solved first and takes up part of the surprise: a share q / (1 + q) of
@@ -137,7 +138,7 @@ class Assessor:
         a = self.model.item_blocks_[items].copy()
         if m.biases:
             a[:, 0] = 1.0
-        keep = 1.0 / (1.0 + np.einsum("bd,ude,be->bu", a, self._user_inverse(users), a))
+        keep = 1.0 / (1.0 + np.einsum("bd,ude,be->bu", a, inverse, a))
         C = np.einsum("bu,ud,ue->bde", w, B, B)
         Cs = np.einsum("bu,ud,ue->bde", w * keep, B, B)
         quad = np.einsum("ud,bde,ue->bu", B, cov, B)
@@ -147,36 +148,22 @@ class Assessor:
         middle = n * (n - 1) * Cs @ cov @ Cs + n * Dss + n * m.sigma2_new_ * Css
         return K @ middle @ K.transpose(0, 2, 1)
 
-    def _unrated(self, items, users):
-        """(b, len(users)) 1 where the user has not rated the item: only they can be asked."""
-        if getattr(self, "_by_item", None) is None:
-            self._by_item = self.model.rating_data().by_item
-        return 1.0 - self._by_item[np.asarray(items)][:, users].astype(bool).toarray()
-
-    def _moment_users(self):
-        """The users over whom an update's moments are averaged (a fixed sample of a large set)."""
-        U = len(self.model.user_ids_)
-        if U <= _MOMENT_USERS:
-            return np.arange(U)
-        return np.sort(np.random.default_rng(0).choice(U, _MOMENT_USERS, replace=False))
-
-    def _user_inverse(self, users):
-        """``(G_u + lam_user I)^-1`` of ``users``: each one's own solve in the trainer's user step
-        (kept for the fixed sample of :meth:`_moment_users`, worked out afresh for others)."""
-        cached = getattr(self, "_uinv", None)
-        if cached is not None and np.array_equal(cached[0], users):
-            return cached[1]
-        F = self.model.factors_
-        ib, ix = F.split(F.item)
-        if getattr(self, "_by_user", None) is None:
-            self._by_user = self.model.rating_data().by_user
-        R = self._by_user[users]
-        offset = np.zeros(len(ix)) if ib is None else ib
-        G = row_grams(R.indptr, R.indices, R.data, design(ix, ib), offset)[0]
-        inverse = np.linalg.inv(G + self.model.lam_user_ * np.eye(G.shape[1]))
-        if len(users) == len(self._moment_users()):
-            self._uinv = (np.asarray(users), inverse)
-        return inverse
+    def _moments(self):
+        """What an update's moments are averaged over, worked out once: a fixed sample of users
+        (all of a small set), the ratings by item, and each sampled user's own solve in the
+        trainer's user step, ``(G_u + lam_user I)^-1``."""
+        if getattr(self, "_moment_state", None) is None:
+            U = len(self.model.user_ids_)
+            users = np.arange(U) if U <= _MOMENT_USERS else \
+                np.sort(np.random.default_rng(0).choice(U, _MOMENT_USERS, replace=False))
+            data = self.model.rating_data()
+            F = self.model.factors_
+            ib, ix = F.split(F.item)
+            R = data.by_user[users]
+            offset = np.zeros(len(ix)) if ib is None else ib
+            G = row_grams(R.indptr, R.indices, R.data, design(ix, ib), offset)[0]
+            self._moment_state = (users, data.by_item, np.linalg.inv(G + self.model.lam_user_ * np.eye(G.shape[1])))
+        return self._moment_state
 
     def _weights(self, items):
         """(b, U) weight of each user among the responders assumed for each item."""
