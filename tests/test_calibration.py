@@ -57,15 +57,15 @@ def movielens_table():
 def test_calibration_on_movielens_latest_small(movielens_table):
     table = movielens_table
     assert table["actual"].iloc[-1] > table["actual"].iloc[0] + 0.2
-    assert (table.loc[[0, 2, 5, 10], "gap"] <= 0.05).all(), table
-    # at 20 and 40 ratings the planner is too sure today (pooled gaps 0.06 and 0.07, the
-    # prediction above the actual overlap): held to what it achieves, the target is the next test
+    assert (table.loc[[0, 2, 5, 10, 20], "gap"] <= 0.05).all(), table
+    # at 40 ratings the planner is too sure today (pooled gap 0.051, the prediction above the
+    # actual overlap): held to what it achieves, the target is the next test
     assert (table["gap"] <= 0.10).all(), table
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="the planner over-predicts stability at 20 and 40 ratings on MovieLens "
-                                       "by 0.06-0.07 (README, Calibration); the 0.05 target is not met there")
+@pytest.mark.xfail(strict=True, reason="the planner over-predicts stability at 40 ratings on MovieLens "
+                                       "by 0.051 (README, Calibration); the 0.05 target is not met there")
 def test_movielens_calibration_meets_the_target_at_every_n(movielens_table):
     assert (movielens_table["gap"] <= 0.05).all(), movielens_table
 
@@ -122,13 +122,13 @@ def movielens_loop():
 def test_update_loop_calibration_on_movielens(movielens_loop):
     table = movielens_loop
     assert (table.loc[[2, 5, 10, 20], "gap"] <= 0.03).all(), table
-    # at 40 ratings the planner expects more of each list to stand than does (pooled gap 0.05
+    # at 40 ratings the planner expects more of each list to stand than does (pooled gap 0.038
     # when measured): held to what it achieves; the target is the next test
-    assert table.loc[40, "gap"] <= 0.08, table
+    assert table.loc[40, "gap"] <= 0.06, table
 
 
 @pytest.mark.slow
 @pytest.mark.xfail(strict=True, reason="at 40 ratings the planner over-predicts the share of MovieLens lists "
-                                       "that stands after update by about 0.05 (README, Calibration)")
+                                       "that stands after update by about 0.04 (README, Calibration)")
 def test_movielens_update_loop_meets_the_target_at_every_n(movielens_loop):
     assert (movielens_loop["gap"] <= 0.03).all(), movielens_loop

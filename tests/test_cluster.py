@@ -253,6 +253,8 @@ def test_every_rating_data_method_matches_the_local_one(cluster):
                         there.solve("user", Fe, off, 2 * np.eye(d), prior, weight, with_edf=True)):
             assert np.allclose(a, b, rtol=1e-12, atol=1e-12)
         assert there.sse(F) == pytest.approx(here.sse(F), rel=1e-12)
+        for a, b in zip(here.rater_sums(F.user), there.rater_sums(F.user)):
+            assert np.allclose(a, b, rtol=1e-12, atol=1e-12)
         members = rng.random(n_items) < 0.5
         assert np.allclose(there.leverage(Fe, off, 3.0, members), here.leverage(Fe, off, 3.0, members))
         held = np.array([3, 17, 29])

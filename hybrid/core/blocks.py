@@ -26,6 +26,7 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numba
 import numpy as np
+import scipy.sparse as sp
 from threadpoolctl import ThreadpoolController
 
 _BUDGET = 1 << 21  # floats in one padded gather (row_grams, leverage_rows): bounds memory
@@ -354,6 +355,25 @@ def _sse_kernel(indptr, indices, values, rows_z, other_z, biases):  # pragma: no
             diff = values[e] - pred
             total += diff * diff
     return total
+
+
+def rater_sums(indptr, indices, values, others):
+    """Per row, the sum of its raters' rows of ``others`` and the sum of its ``values``.
+
+    ``others`` (n_other, d) are the other side's blocks; a rating's entry counts once
+    whatever its value (a rating equal to the mean is a stored zero and still a rater).
+
+    >>> import scipy.sparse as sp
+    >>> R = sp.csr_matrix(([0.5, -1.0, 2.0], [0, 2, 1], [0, 2, 3]), shape=(2, 3))
+    >>> sums, own = rater_sums(R.indptr, R.indices, R.data, np.array([[1.0, 2.0], [3.0, 4.0], [5.0, 6.0]]))
+    >>> sums.tolist(), own.tolist()          # row 0: users 0 and 2; row 1: user 1
+    ([[6.0, 8.0], [3.0, 4.0]], [-0.5, 2.0])
+    """
+    n = len(indptr) - 1
+    pattern = sp.csr_matrix((np.ones(len(indices)), np.asarray(indices), np.asarray(indptr)),
+                            shape=(n, len(others)))
+    rows = np.repeat(np.arange(n), np.diff(indptr))
+    return np.asarray(pattern @ others), np.bincount(rows, weights=np.asarray(values, float), minlength=n)
 
 
 def leverage_rows(indptr, indices, values, F_ext, y_offset, lam, members):

@@ -17,7 +17,6 @@ new item is: each item counts by the ratings it got.
 from __future__ import annotations
 
 import numpy as np
-import scipy.sparse as sp
 
 from hybrid.core.mapsolve import column_parts, map_solver
 
@@ -76,13 +75,13 @@ def loo_projections(A_rated, Z_rated, weight, lam_map, P):
 SPREAD_MIN_RATINGS = 20
 
 
-def launch_offset(users, items, ratings, mu, F, A, weight, lam_map, noise=None):
+def launch_offset(data, F, A, weight, lam_map, noise=None):
     """The mean error, over every rating, of predictions from left-out projections; with
     ``noise`` (the variance of one rating), also the spread of an item's average error.
 
-    ``users``, ``items``, ``ratings`` are the fit's codes and values; ``F``
-    the fitted :class:`~hybrid.core.train.Factors` (with biases); ``A`` the
-    attribute matrix of every item; ``weight`` the items' prior weights.
+    ``data`` holds the fit's ratings (:class:`~hybrid.core.steps.RatingData` or the cluster's,
+    whose workers do the sums); ``F`` the fitted :class:`~hybrid.core.train.Factors` (with
+    biases); ``A`` the attribute matrix of every item; ``weight`` the items' prior weights.
 
     The spread is the variance of an item's average rating around its launch score beyond the
     noise of its ratings: over the items with at least :data:`SPREAD_MIN_RATINGS` ratings,
@@ -90,18 +89,16 @@ def launch_offset(users, items, ratings, mu, F, A, weight, lam_map, noise=None):
     offset (method of moments; ``E e_i^2 = tau^2 + noise / n_i`` for independent errors).  Returns
     ``offset``, or ``(offset, spread)`` with ``noise`` (spread NaN with too few such items).
     """
-    n_items = F.item.shape[0]
-    counts = np.bincount(items, minlength=n_items)
+    counts = data.item_counts()
     rated = np.flatnonzero(counts > 0)
     if not len(rated) or not F.biases:
         return 0.0 if noise is None else (0.0, float("nan"))
     Z = loo_projections(A[rated], F.item[rated], np.asarray(weight)[rated], lam_map, F.P)
     # sum over an item's ratings of r - mu - b_u - b_i - theta_u . x_i, for the
-    # left-out block [b_i, x_i]: per item, its ratings' sums against the raters'
-    # blocks (one sparse product, no per-rating table of vectors)
-    R = sp.csr_matrix((np.ones(len(items)), (items, users)), shape=(n_items, F.user.shape[0]))[rated]
-    raters = np.asarray(R @ F.user)                          # sum of [b_u, theta_u] per item
-    own = np.bincount(items, weights=ratings - mu, minlength=n_items)[rated]
+    # left-out block [b_i, x_i]: per item, the sum of its raters' blocks and of its
+    # ratings (no per-rating table of vectors; on a cluster, summed where the blocks are)
+    raters, own = data.rater_sums(F.user)
+    raters, own = raters[rated], own[rated]
     miss = own - raters[:, 0] - counts[rated] * Z[:, 0] - np.einsum("ij,ij->i", raters[:, 1:], Z[:, 1:])
     offset = float(miss.sum() / counts.sum())
     if noise is None:

@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-from hybrid.core.blocks import design, leverage_rows, solve_rows, sse_rows
+from hybrid.core.blocks import design, leverage_rows, rater_sums, solve_rows, sse_rows
 from hybrid.core.mapsolve import column_parts, map_solver
 
 
@@ -74,6 +74,12 @@ class RatingData:
         every user or of the ``users`` given."""
         R = self.by_user if users is None else self.by_user[users]
         return leverage_rows(R.indptr, R.indices, R.data, F_ext, y_offset, lam_user, members)
+
+    def rater_sums(self, user_blocks):
+        """Per item, the sum of its raters' ``user_blocks`` rows and of its ratings (``r - mu``)
+        (:func:`hybrid.core.blocks.rater_sums`)."""
+        R = self.by_item
+        return rater_sums(R.indptr, R.indices, R.data, user_blocks)
 
     def without(self, held) -> "RatingData":
         """The same data less the ratings of items ``held`` (same shapes)."""

@@ -143,6 +143,10 @@ def _leverage(R, fixed, lam, members, rows=None):
     return blocks.leverage_rows(*R, F_ext, y_offset, lam, members)
 
 
+def _rater_sums(R, users):
+    return blocks.rater_sums(*R, users)
+
+
 def _rhs_part(A, z, weight):
     z = z[0] if isinstance(z, tuple) else z   # a block solve's result, or the vectors themselves
     return np.asarray(A.T @ (weight[:, None] * z))
@@ -342,6 +346,13 @@ class ClusterRatingData:
             parts.append(self._submit(_leverage, R, fixed, lam_user, members, rows))
         results = self.client.gather(parts)
         return float(sum(r[0] for r in results)), int(sum(r[1] for r in results))
+
+    def rater_sums(self, user_blocks):
+        """See :meth:`RatingData.rater_sums`: summed on the workers, item block by item block."""
+        users = put(self.client, user_blocks)
+        parts = [self._submit(_rater_sums, R, users) for R in self._futures["item"]]
+        results = self.client.gather(parts)
+        return np.vstack([r[0] for r in results]), np.concatenate([r[1] for r in results])
 
     def without(self, held) -> "ClusterRatingData":
         """A view that leaves out the ratings of items ``held`` (same files, other tasks)."""

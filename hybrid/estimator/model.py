@@ -262,15 +262,15 @@ class HybridFactorModel(Scores, FittedViews, BaseEstimator):
                 biases=self.biases, prior=self.prior, n_jobs=threads(self.n_jobs), validate=validate,
                 on_epoch=on_epoch)
             final = objective(data, F, self.attributes_, self.lam_user_, self.lam_map_, weight)
+            self.set_fitted(factors_=F, mu_=float(data.mu), sigma2_=float(sigma2), sigma2_new_=float(sigma2_new),
+                            prior_weight_=weight)
+            stages["epochs"] = sum(h["seconds"] for h in F.history)
+            stages["learned prior"] = F.timings.get("learned prior", 0.0)
+            stages["other fitting"] = time.perf_counter() - mark - stages["epochs"] - stages["learned prior"]
+            mark = time.perf_counter()
+            self.set_fitted(**self._launch(weight, data))   # where the ratings are (a cluster's workers)
+            stages["launch offset"] = time.perf_counter() - mark
         self._warn_if_unconverged(F.history)
-        self.set_fitted(factors_=F, mu_=float(data.mu), sigma2_=float(sigma2), sigma2_new_=float(sigma2_new),
-                        prior_weight_=weight)
-        stages["epochs"] = sum(h["seconds"] for h in F.history)
-        stages["learned prior"] = F.timings.get("learned prior", 0.0)
-        stages["other fitting"] = time.perf_counter() - mark - stages["epochs"] - stages["learned prior"]
-        mark = time.perf_counter()
-        self.set_fitted(**self._launch(weight))
-        stages["launch offset"] = time.perf_counter() - mark
         last = dict(F.history[-1])
         # the final state (after the learned prior and the last item step) is what is reported
         last["objective"], sse = final
@@ -356,14 +356,13 @@ class HybridFactorModel(Scores, FittedViews, BaseEstimator):
         # prior: it keeps the learned spread around its projection (weight 1)
         return np.where(counts == 0, 1.0, np.maximum(counts / (counts + self.weight_half), 0.05))
 
-    def _launch(self, weight) -> dict:
-        """Measure the launch offset and move the unrated items' bias by it (their
-        blocks are their prior means)."""
+    def _launch(self, weight, data) -> dict:
+        """Measure the launch offset on the fit's ``data`` and move the unrated items' bias by
+        it (their blocks are their prior means)."""
         launched = self.item_counts_ == 0
         offset, spread = 0.0, float("nan")
         if self.launch_offset == "learned":
-            u, i, r = self.ratings_
-            offset, spread = launch_offset(u, i, r, self.mu_, self.factors_, self.attributes_, weight, self.lam_map_,
+            offset, spread = launch_offset(data, self.factors_, self.attributes_, weight, self.lam_map_,
                                            noise=self.sigma2_new_)
         self.set_fitted(launched_=launched, launch_offset_=offset, launch_spread_=spread)
         self.factors_.item[:, 0] += self.prior_shift()
