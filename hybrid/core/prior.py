@@ -109,11 +109,11 @@ POOL_MIN_RATINGS = SETTINGS["plan"]["candidate_min_ratings"].default
 
 @dataclass
 class HeldOutFold:
-    """One fold of well-rated items held out: the users and map re-fitted without them, and
-    what the variance-scale check (:mod:`hybrid.core.variance_scales`) reads of them."""
+    """One fold of well-rated items held out: what the variance-scale check
+    (:mod:`hybrid.core.variance_scales`) and the loop scales read of them, against the users
+    re-solved and the map re-fitted without them (the ratings without them are not kept: on
+    a cluster they would be a second copy of the users' blocks on every worker)."""
 
-    G: Factors             # users re-solved without the held items' ratings (items, map as fitted)
-    problem: Problem       # the fold's problem (the ratings without the held items)
     held: np.ndarray       # the held items' indices
     R: object              # their ratings (CSR rows, r - mu)
     Fe: np.ndarray         # the users' design rows [1, theta_u] fitted without them
@@ -121,7 +121,7 @@ class HeldOutFold:
     grams: np.ndarray      # per held item, the Gram matrix and right-hand side of its raters
     rhs: np.ndarray
     pool: np.ndarray       # the candidate vectors of neighbour lists
-    m: np.ndarray | None = None   # the held items' out-of-sample projections
+    m: np.ndarray          # the held items' out-of-sample projections
 
 
 def _fold(problem: Problem, F: Factors, held, n_jobs) -> HeldOutFold:
@@ -137,8 +137,9 @@ def _fold(problem: Problem, F: Factors, held, n_jobs) -> HeldOutFold:
     """
     out = Problem.of(problem.data.without(held), problem.A, lam_user=problem.lam_user, lam_map=problem.lam_map,
                      weight=problem.weight)
-    G = Factors(F.user.copy(), F.item.copy(), F.W.copy(), F.P.copy(), F.biases)
+    G = Factors(F.user.copy(), F.item, F.W, F.P, F.biases)      # the user step writes users only
     user_step(out.data, G, out.lam_user, n_jobs)
+    W = out.solver.with_penalty(problem.lam_map).solve(F.item[out.rated], F.P)   # the map without them
     ub, ut = G.split(G.user)
     R = problem.data.item_rows(held)
     Fe = design(ut, ub)
@@ -146,7 +147,7 @@ def _fold(problem: Problem, F: Factors, held, n_jobs) -> HeldOutFold:
     grams, rhs = row_grams(R.indptr, R.indices, R.data, Fe, offset)
     off = 1 if G.biases else 0
     pool = np.flatnonzero(out.data.item_counts() >= POOL_MIN_RATINGS)
-    return HeldOutFold(G, out, held, R, Fe, offset, grams, rhs, G.item[pool, off:])
+    return HeldOutFold(held, R, Fe, offset, grams, rhs, F.item[pool, off:], np.asarray(problem.A[held] @ W))
 
 
 def learn_prior(problem: Problem, F: Factors, sigma2, seed, n_jobs=1, recalibrate=True, folds=2):
@@ -158,12 +159,9 @@ def learn_prior(problem: Problem, F: Factors, sigma2, seed, n_jobs=1, recalibrat
     (kappa_prior, kappa_noise), folds)``: the prior covariance and the variance of a
     new rating, both recalibrated, and the held-out folds (for :func:`loop_scale`).
     """
-    A, weight = problem.A, problem.weight
+    weight = problem.weight
     held = held_out_set(problem.data.item_counts(), seed, fraction=1.0, most=400 * folds)
     parts = [_fold(problem, F, h, n_jobs) for h in np.array_split(held, folds) if len(h)]
-    for f in parts:
-        W = f.problem.solver.with_penalty(problem.lam_map).solve(f.G.item[f.problem.rated], f.G.P)
-        f.m = np.asarray(A[f.held] @ W)
     cat = lambda key: np.concatenate([getattr(f, key) for f in parts])
     Psi = em_covariance(cat("grams"), cat("rhs"), cat("m"), sigma2, sigma2 * np.linalg.inv(F.P),
                         weight=weight[cat("held")] if np.ndim(weight) == 2 else None)

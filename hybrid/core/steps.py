@@ -83,17 +83,20 @@ class RatingData:
 
     def without(self, held) -> "RatingData":
         """The same data less the ratings of items ``held`` (same shapes)."""
-        R = self.by_item
-        dropped = np.zeros(R.shape[0], bool)
+        dropped = np.zeros(self.shape[1], bool)
         dropped[held] = True
-        # select entries rather than scale rows by zero: a rating equal to the mean is a
-        # stored zero and must stay
-        keep = np.repeat(~dropped, np.diff(R.indptr))
-        indptr = np.concatenate([[0], np.cumsum(np.where(dropped, 0, np.diff(R.indptr)))])
-        by_item = sp.csr_matrix((R.data[keep], R.indices[keep], indptr), shape=R.shape)
-        by_user = by_item.T.tocsr()
-        by_user.sort_indices()
-        return RatingData(by_user, by_item, self.mu)
+        # both copies by selecting entries (no transpose, no sort: the order is kept), and
+        # entries rather than rows scaled by zero: a rating equal to the mean is a stored zero
+        # and must stay
+        return RatingData(_keep_entries(self.by_user, ~dropped[self.by_user.indices]),
+                          _keep_entries(self.by_item, np.repeat(~dropped, np.diff(self.by_item.indptr))), self.mu)
+
+
+def _keep_entries(R: sp.csr_matrix, keep) -> sp.csr_matrix:
+    """``R`` with only the stored entries where ``keep`` is true."""
+    rows = np.repeat(np.arange(R.shape[0]), np.diff(R.indptr))
+    indptr = np.concatenate([[0], np.cumsum(np.bincount(rows[keep], minlength=R.shape[0]))])
+    return sp.csr_matrix((R.data[keep], R.indices[keep], indptr), shape=R.shape)
 
 
 @dataclass

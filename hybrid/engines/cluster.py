@@ -184,13 +184,14 @@ def _write_side(folder, rows, cols, values, n_rows, partitions):
     """One partitioned copy: a Parquet file per block of rows, sorted by (row, col)."""
     folder.mkdir(parents=True)
     order = np.lexsort((cols, rows))
-    rows, cols, values = rows[order], cols[order], values[order]
     counts = np.bincount(rows, minlength=n_rows)
+    starts = np.concatenate([[0], np.cumsum(counts)])
     out = []
     for b, (lo, hi) in enumerate(_bounds(counts, partitions)):
-        s, e = np.searchsorted(rows, [lo, hi])
+        # one block's ratings at a time: the client never holds a sorted copy of them all
+        take = order[starts[lo]:starts[hi]]
         path = str(folder / f"block-{b:05d}.parquet")
-        pd.DataFrame({"row": rows[s:e], "col": cols[s:e], "value": values[s:e]}).to_parquet(path, index=False)
+        pd.DataFrame({"row": rows[take], "col": cols[take], "value": values[take]}).to_parquet(path, index=False)
         out.append(_Block(path, lo, hi))
     return out
 
@@ -226,8 +227,9 @@ class ClusterRatingData:
         self.drop = drop              # items whose ratings this view leaves out
         self._owner = owner
         self._last_items = None
-        self._futures = {side: [self._submit(_load, b, *self._drops(side)) for b in blist]
-                         for side, blist in sides.items()}
+        # each side's blocks are loaded on first use: a view for a held-out fold re-solves its
+        # users only, and would otherwise hold a second copy of the item side on every worker
+        self._futures = {}
         self._attributes = attributes if attributes is not None or A_paths is None else \
             [self._submit(sp.load_npz, p) for p in A_paths]
 
@@ -274,6 +276,12 @@ class ClusterRatingData:
         hint = {} if near is None else {"workers": near, "allow_other_workers": True}
         return self.client.submit(fn, *args, pure=False, retries=_RETRIES, **hint)
 
+    def _blocks(self, side):
+        """The futures of ``side``'s blocks on the workers (loaded on first use)."""
+        if side not in self._futures:
+            self._futures[side] = [self._submit(_load, b, *self._drops(side)) for b in self.sides[side]]
+        return self._futures[side]
+
     def _homes(self, futures):
         """For each future, the workers holding it (None where unknown)."""
         held = self.client.who_has(futures)
@@ -303,8 +311,8 @@ class ClusterRatingData:
             raise InputError("the Dask engine re-solves whole sides only; fold new ratings in locally")
         fixed = put(self.client, (F_ext, y_offset, P))
         parts = []
-        homes = self._homes(self._futures[side])
-        for blk, R, home in zip(self.sides[side], self._futures[side], homes):
+        homes = self._homes(self._blocks(side))
+        for blk, R, home in zip(self.sides[side], self._blocks(side), homes):
             pm = None if prior_mean is None else prior_mean[blk.lo:blk.hi]
             w = None if weight is None else weight[blk.lo:blk.hi]
             parts.append(self._submit(_solve, R, fixed, pm, w, with_edf, near=home))
@@ -333,7 +341,7 @@ class ClusterRatingData:
     def sse(self, F) -> float:
         items = put(self.client, F.item)
         parts = [self._submit(_sse, R, F.user[blk.lo:blk.hi], items, F.biases)
-                 for blk, R in zip(self.sides["user"], self._futures["user"])]
+                 for blk, R in zip(self.sides["user"], self._blocks("user"))]
         return float(sum(self.client.gather(parts)))
 
     def leverage(self, F_ext, y_offset, lam_user, members, users=None):
@@ -341,7 +349,7 @@ class ClusterRatingData:
         fixed = put(self.client, (F_ext, y_offset))
         parts = []
         users = None if users is None else np.asarray(users)
-        for blk, R in zip(self.sides["user"], self._futures["user"]):
+        for blk, R in zip(self.sides["user"], self._blocks("user")):
             rows = None if users is None else users[(users >= blk.lo) & (users < blk.hi)] - blk.lo
             parts.append(self._submit(_leverage, R, fixed, lam_user, members, rows))
         results = self.client.gather(parts)
@@ -350,7 +358,7 @@ class ClusterRatingData:
     def rater_sums(self, user_blocks):
         """See :meth:`RatingData.rater_sums`: summed on the workers, item block by item block."""
         users = put(self.client, user_blocks)
-        parts = [self._submit(_rater_sums, R, users) for R in self._futures["item"]]
+        parts = [self._submit(_rater_sums, R, users) for R in self._blocks("item")]
         results = self.client.gather(parts)
         return np.vstack([r[0] for r in results]), np.concatenate([r[1] for r in results])
 
@@ -367,7 +375,7 @@ class ClusterRatingData:
         rows = np.asarray(rows, np.int64)
         n_users = self._shape[0]
         pieces, where = [], []
-        for blk, R in zip(self.sides["item"], self._futures["item"]):
+        for blk, R in zip(self.sides["item"], self._blocks("item")):
             inside = np.flatnonzero((rows >= blk.lo) & (rows < blk.hi))
             if inside.size:
                 pieces.append(self._submit(_pick_rows, R, rows[inside] - blk.lo, n_users))

@@ -44,6 +44,7 @@ def synthetic(n_users, n_items, n_ratings, rank=32, seed=0):
 def one_size(n_users, n_items, n_ratings, epochs=4):
     from sklearn.decomposition import TruncatedSVD
 
+    from hybrid.common.limits import SETTINGS, threads
     from hybrid.core.steps import Problem, RatingData
     from hybrid.core.train import fit_factors
 
@@ -51,7 +52,8 @@ def one_size(n_users, n_items, n_ratings, epochs=4):
     data = RatingData.from_codes(u, i, r, n_users, n_items)
     t0 = time.perf_counter()
     F, _, _ = fit_factors(Problem.of(data, A, lam_user=5.0, lam_map=1.0), rank=32, lam_item=5.0, epochs=epochs,
-                          tol=0.0, seed=0, prior="fixed", n_jobs=2)
+                          tol=0.0, seed=0, prior="fixed",
+                          n_jobs=threads(SETTINGS["model"]["n_jobs"].default))   # the default: every core
     per_epoch = float(np.median([h["seconds"] for h in F.history]))
     first_epoch = F.history[0]["seconds"]
     out = {"ratings": int(data.nnz), "users": n_users, "items": n_items, "epoch_seconds": per_epoch,
