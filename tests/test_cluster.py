@@ -260,6 +260,11 @@ def test_every_rating_data_method_matches_the_local_one(cluster):
         held = np.array([3, 17, 29])
         a, b = here.without(held), there.without(held)
         assert b.nnz == a.nnz and np.array_equal(b.item_counts(), a.item_counts())
+        # a view loads a side only when asked for it (a held-out fold solves users alone)
+        assert b.loaded_sides == ()
+        assert np.allclose(a.solve("user", Fe, off, np.eye(d))[0], b.solve("user", Fe, off, np.eye(d))[0],
+                           rtol=1e-12, atol=1e-12)
+        assert b.loaded_sides == ("user",)
         Fu = design(F.user[:, 1:], F.user[:, 0])
         assert np.allclose(a.solve("item", Fu, F.user[:, 0], np.eye(d))[0],
                            b.solve("item", Fu, F.user[:, 0], np.eye(d))[0], rtol=1e-12, atol=1e-12)

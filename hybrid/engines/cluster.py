@@ -276,6 +276,11 @@ class ClusterRatingData:
         hint = {} if near is None else {"workers": near, "allow_other_workers": True}
         return self.client.submit(fn, *args, pure=False, retries=_RETRIES, **hint)
 
+    @property
+    def loaded_sides(self) -> tuple:
+        """The sides whose blocks this view has loaded on the workers (in the order loaded)."""
+        return tuple(self._futures)
+
     def _blocks(self, side):
         """The futures of ``side``'s blocks on the workers (loaded on first use)."""
         if side not in self._futures:
