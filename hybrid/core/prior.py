@@ -131,9 +131,10 @@ def _fold(problem: Problem, F: Factors, held, n_jobs) -> HeldOutFold:
     One exact user step undoes the co-adaptation: each user's vector as if the held items had
     never been rated.  The other items stay as fitted.  Re-fitting items and map in further
     alternating rounds (ten in the previous release) cost most of a default fit's extra
-    time and was not needed for calibration: with the single step, the pooled calibration gaps
-    on MovieLens were at or below those of ten rounds at every n, and the club's within their
-    standard errors (README, Speed and memory).
+    time and was not needed for calibration: measured together with the settled items of
+    :func:`hybrid.core.train._finish`, the single step's MovieLens hide-and-re-solve gaps were at
+    or below ten rounds' at every n, and the update loop's and the club's tables stayed within
+    their bounds (README, Calibration; Speed and memory).
     """
     out = Problem.of(problem.data.without(held), problem.A, lam_user=problem.lam_user, lam_map=problem.lam_map,
                      weight=problem.weight)
