@@ -58,11 +58,18 @@ def test_cluster_trainer_equals_local(cluster, data, local_model, monkeypatch):
     reductions = []
     original = ClusterRatingData.map_rhs
     monkeypatch.setattr(ClusterRatingData, "map_rhs", lambda self, *a: reductions.append(1) or original(self, *a))
+    # the penalty search travels to a worker: a call recorded here would mean it ran on the client
+    import hybrid.estimator.model as model_module
+    searched_here = []
+    search = model_module.choose_penalties
+    monkeypatch.setattr(model_module, "choose_penalties",
+                        lambda *a, **k: searched_here.append(1) or search(*a, **k))
     remote = HybridFactorModel(**FIT, schema=data.schema).fit(
         data.ratings, data.lots, engine=Engine("dask", c.scheduler_address, partitions=4))
     _assert_same_model(local_model, remote)
     # the map steps went through the tree reduction on the workers (one per epoch at least)
     assert len(reductions) >= FIT["epochs"]
+    assert searched_here == [] and [p for p, _ in remote.penalty_path_] == [p for p, _ in local_model.penalty_path_]
 
 
 def test_cluster_trainer_with_bias_weighting_equals_local(cluster, data):

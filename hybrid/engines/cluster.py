@@ -21,6 +21,7 @@ Dask (``dask`` and ``distributed``) is an optional extra: from the clone, ``pip 
 from __future__ import annotations
 
 import contextlib
+import functools
 import shutil
 import tempfile
 import warnings
@@ -92,6 +93,20 @@ def training_data(model, engine):
             yield data
         finally:
             data.close()
+
+
+def on_a_worker(data, fn, *args, **kwargs):
+    """``fn(*args, **kwargs)`` where ``data`` lives: here for local data, or as one task on a
+    worker of ``data``'s cluster (retried elsewhere if that worker dies), its result brought
+    back.  For work on a bounded sample that should not run on the client (the penalty search).
+
+    >>> on_a_worker(None, divmod, 7, 2)
+    (3, 1)
+    """
+    client = getattr(data, "client", None)
+    if client is None:
+        return fn(*args, **kwargs)
+    return client.submit(functools.partial(fn, *args, **kwargs), pure=False, retries=_RETRIES).result()
 
 
 def _bounds(counts, partitions):

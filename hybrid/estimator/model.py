@@ -14,11 +14,11 @@ from hybrid.common.limits import ESTIMATOR, check_estimator, threads
 from hybrid.common.seeds import stream
 from hybrid.core.launch import launch_offset
 from hybrid.core.penalties import NAMES as PENALTIES
-from hybrid.core.penalties import START, choose_penalties
+from hybrid.core.penalties import SEARCH_RATINGS, START, choose_penalties, user_sample
 from hybrid.core.ranksearch import search_rank
 from hybrid.core.steps import Problem, RatingData, objective
 from hybrid.core.train import fit_factors
-from hybrid.engines.cluster import training_data
+from hybrid.engines.cluster import on_a_worker, training_data
 from hybrid.engines.engine import LOCAL, Engine
 from hybrid.estimator.features import AttributeEncoder
 from hybrid.estimator.fitted import FittedViews
@@ -248,9 +248,11 @@ class HybridFactorModel(Scores, FittedViews, BaseEstimator):
         mark = time.perf_counter()
         self.set_fitted(**self._choose_rank())
         stages["rank search"], mark = time.perf_counter() - mark, time.perf_counter()
-        self.set_fitted(**self._choose_penalties())
-        stages["penalty search"], mark = time.perf_counter() - mark, time.perf_counter()
         with training_data(self, engine) as data:
+            stages["prepare"] += time.perf_counter() - mark    # the engine's copy of the ratings
+            mark = time.perf_counter()
+            self.set_fitted(**self._choose_penalties(data))
+            stages["penalty search"], mark = time.perf_counter() - mark, time.perf_counter()
             validate = None
             if valid.size:
                 uv, iv, rv = u[valid], i[valid], r[valid]
@@ -301,17 +303,23 @@ class HybridFactorModel(Scores, FittedViews, BaseEstimator):
                           f"(last change {abs(before - last) / abs(last):.1e} of it, tol {self.tol:g}); "
                           "more epochs may fit better", ConvergenceWarning, stacklevel=3)
 
-    def _choose_penalties(self) -> dict:
-        """``lam_user_``, ``lam_item_``, ``lam_map_`` and ``penalty_path_`` (empty when all fixed)."""
+    def _choose_penalties(self, data) -> dict:
+        """``lam_user_``, ``lam_item_``, ``lam_map_`` and ``penalty_path_`` (empty when all fixed).
+
+        The search runs where ``data`` lives: here, or on one of a cluster's workers with the
+        seeded sample of users it searches on (the client never builds a rating matrix)."""
         given = {name: getattr(self, name) for name in PENALTIES}
         path = []
         if all(given[name] != "auto" for name in PENALTIES):
             chosen = {name: float(v) for name, v in given.items()}
         else:
             shape = (len(self.user_ids_), len(self.item_ids_))
-            chosen, path = choose_penalties(
-                self.ratings_, shape, self.attributes_, rank=self.rank_, given=given, biases=self.biases,
-                seed=self.seed, n_jobs=threads(self.n_jobs))
+            keep = user_sample(self.ratings_[0], SEARCH_RATINGS, self.seed)
+            sample = tuple(c[keep] for c in self.ratings_)
+            chosen, path = on_a_worker(
+                data, choose_penalties, sample, shape, self.attributes_, rank=self.rank_, given=given,
+                biases=self.biases, seed=self.seed, most=len(sample[0]),
+                n_jobs=1 if hasattr(data, "client") else threads(self.n_jobs))
         return {"penalty_path_": path, **{name + "_": float(chosen[name]) for name in PENALTIES}}
 
     def _choose_rank(self) -> dict:
